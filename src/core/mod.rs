@@ -1,0 +1,23 @@
+//! Pure-Rust kernels. Nothing in this module knows about Python.
+//!
+//! Every kernel:
+//! * is generic over the storage float ([`Real`]: `f32` or `f64`) and
+//!   accumulates in `f64`;
+//! * reads inputs through `ndarray` views of any strides (a contiguous slice is
+//!   only the fast path);
+//! * takes its parallelism explicitly ([`Par`]) and produces bit-identical
+//!   results for any thread count: work is split at data-defined boundaries;
+//! * reports bad input as a [`CoreError`] naming the argument and the first
+//!   offending index, never by panicking.
+
+pub mod error;
+pub mod float;
+pub mod par;
+pub mod ragged;
+pub mod scan;
+pub mod stats;
+pub mod timemajor;
+
+pub use error::{At, CoreError, CoreResult};
+pub use float::Real;
+pub use par::Par;

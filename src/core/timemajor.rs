@@ -1,0 +1,708 @@
+//! Returns and GAE over time-major buffers viewed as `[T, M]`: axis 0 is time,
+//! axis 1 enumerates the independent streams (the binding layer folds every
+//! non-time axis into it). Any strides are read in place.
+//!
+//! The bootstrap rule (per step `t`, per stream):
+//!
+//! ```text
+//! V'_t = 0               if terminated[t]
+//!      = next_values[t]  if next_values is given
+//!      = values[t+1]     if t < T-1 (gae) / G_{t+1} (returns), not truncated[t]
+//!      = bootstrap       if t = T-1
+//! ```
+//!
+//! A truncated step without `next_values` is an error, never a silent zero.
+//!
+//! Work is cut into tiles of rows x streams; streams are independent and the
+//! tiles of one stream run bottom-up with the exact carry, so the result never
+//! depends on the tiling or on the thread count.
+
+use super::error::{check_unit, At, CoreError, CoreResult};
+use super::float::Real;
+use super::par::Par;
+use super::stats;
+use ndarray::{s, ArrayView1, ArrayView2, ArrayViewMut2, Axis, Zip};
+
+/// The per-step (`[T, M]`) and per-stream (`[M]`) inputs of a time-major kernel.
+#[derive(Clone)]
+pub struct Steps<'a, F> {
+    /// `r_t`, required.
+    pub rewards: ArrayView2<'a, F>,
+    /// `V(s_t)`; required by [`gae`], ignored by [`discounted_returns`].
+    pub values: Option<ArrayView2<'a, F>>,
+    /// `V(s_{t+1})` as seen at step `t`.
+    pub next_values: Option<ArrayView2<'a, F>>,
+    /// The state after step `t` is terminal.
+    pub terminated: Option<ArrayView2<'a, bool>>,
+    /// The episode was cut after step `t` although the state is not terminal.
+    pub truncated: Option<ArrayView2<'a, bool>>,
+    /// `V` of the state after the last row, per stream (default 0).
+    pub bootstrap: Option<ArrayView1<'a, F>>,
+}
+
+impl<'a, F: Real> Steps<'a, F> {
+    /// Rewards only; add the optional inputs with struct update syntax.
+    pub fn new(rewards: ArrayView2<'a, F>) -> Self {
+        Steps {
+            rewards,
+            values: None,
+            next_values: None,
+            terminated: None,
+            truncated: None,
+            bootstrap: None,
+        }
+    }
+
+    fn dims(&self) -> (usize, usize) {
+        self.rewards.dim()
+    }
+
+    /// Shape, rule and (optionally) finiteness checks shared by the kernels.
+    fn validate(&self, need_values: bool, check_finite: bool, par: Par) -> CoreResult<()> {
+        let shape = self.rewards.shape();
+        let same = |name: &'static str, s: Option<&[usize]>| -> CoreResult<()> {
+            match s {
+                Some(s) if s != shape => Err(CoreError::shape_mismatch(
+                    name,
+                    s,
+                    "rewards",
+                    shape,
+                    "per-step arrays must have the shape of rewards",
+                )),
+                _ => Ok(()),
+            }
+        };
+        same("values", self.values.as_ref().map(|a| a.shape()))?;
+        same("next_values", self.next_values.as_ref().map(|a| a.shape()))?;
+        same("terminated", self.terminated.as_ref().map(|a| a.shape()))?;
+        same("truncated", self.truncated.as_ref().map(|a| a.shape()))?;
+        if need_values && self.values.is_none() {
+            return Err(CoreError::input("values", "is required"));
+        }
+        if let Some(b) = &self.bootstrap {
+            if b.len() != self.dims().1 {
+                return Err(CoreError::shape_mismatch(
+                    "bootstrap",
+                    b.shape(),
+                    "rewards",
+                    shape,
+                    "bootstrap must have the shape of rewards without the time axis",
+                ));
+            }
+            if self.next_values.is_some() {
+                return Err(CoreError::input(
+                    "bootstrap",
+                    "is not allowed together with next_values (its last row already carries the bootstrap)",
+                ));
+            }
+        }
+        if let (Some(tr), None) = (&self.truncated, &self.next_values) {
+            if let Some((t, m)) = first_true(tr, par) {
+                return Err(CoreError::input_at(
+                    "truncated",
+                    At::TimeStream(t, m),
+                    "is True but next_values is not given: truncated steps need next_values to bootstrap from",
+                ));
+            }
+        }
+        if check_finite {
+            check_finite_2d("rewards", &self.rewards, par)?;
+            if need_values {
+                if let Some(v) = &self.values {
+                    check_finite_2d("values", v, par)?;
+                }
+            }
+            if let Some(v) = &self.next_values {
+                check_finite_2d("next_values", v, par)?;
+            }
+            if let Some(b) = &self.bootstrap {
+                if let Some(i) = b.iter().position(|x| !x.finite()) {
+                    return Err(CoreError::non_finite("bootstrap", At::Flat(i)));
+                }
+            }
+        }
+        Ok(())
+    }
+}
+
+/// Which recurrence to run.
+#[derive(Debug, Clone, Copy)]
+enum Kind {
+    Returns { gamma: f64 },
+    Gae { gamma: f64, lam: f64 },
+}
+
+/// Discounted returns `G_t = r_t + gamma * X_t` (module docs for `X_t`),
+/// written to `out` (`[T, M]`, any strides).
+pub fn discounted_returns<F: Real>(
+    steps: &Steps<'_, F>,
+    gamma: f64,
+    check_finite: bool,
+    out: ArrayViewMut2<'_, F>,
+    par: Par,
+) -> CoreResult<()> {
+    check_unit("gamma", gamma)?;
+    steps.validate(false, check_finite, par)?;
+    check_out("out", out.shape(), steps.rewards.shape())?;
+    run(steps, Kind::Returns { gamma }, out, None, par);
+    Ok(())
+}
+
+/// GAE advantages and lambda-returns (Schulman et al. 2016, eq. 16):
+///
+/// ```text
+/// delta_t = r_t + gamma * V'_t - V(s_t)
+/// A_t     = delta_t + gamma * lam * (1 - end_t) * A_{t+1},   A_T = 0
+/// R_t     = A_t + V(s_t)
+/// ```
+///
+/// With `normalize`, `A` is then replaced by `(A - mean) / (std + eps)` over all
+/// elements (population std); `R` keeps the raw advantages.
+#[allow(clippy::too_many_arguments)]
+pub fn gae<F: Real>(
+    steps: &Steps<'_, F>,
+    gamma: f64,
+    lam: f64,
+    normalize: Option<f64>,
+    check_finite: bool,
+    mut adv: ArrayViewMut2<'_, F>,
+    ret: ArrayViewMut2<'_, F>,
+    par: Par,
+) -> CoreResult<()> {
+    check_unit("gamma", gamma)?;
+    check_unit("lam", lam)?;
+    steps.validate(true, check_finite, par)?;
+    check_out("out[0]", adv.shape(), steps.rewards.shape())?;
+    check_out("out[1]", ret.shape(), steps.rewards.shape())?;
+    if let Some(eps) = normalize {
+        if !(eps.is_finite() && eps >= 0.0) {
+            return Err(CoreError::input(
+                "eps",
+                format!("must be finite and >= 0, got {eps}"),
+            ));
+        }
+    }
+    run(
+        steps,
+        Kind::Gae { gamma, lam },
+        adv.view_mut(),
+        Some(ret),
+        par,
+    );
+    if let Some(eps) = normalize {
+        stats::normalize_inplace(&mut adv, None, eps, 0, par)?;
+    }
+    Ok(())
+}
+
+fn check_out(name: &'static str, got: &[usize], want: &[usize]) -> CoreResult<()> {
+    if got != want {
+        return Err(CoreError::shape_mismatch(
+            name,
+            got,
+            "rewards",
+            want,
+            "out must have the output shape",
+        ));
+    }
+    Ok(())
+}
+
+/// Elements per tile (rows x streams) of scratch.
+const TILE: usize = 4096;
+
+/// The stream-block width: wide enough for the inner loop to vectorise, narrow
+/// enough that every thread gets blocks. Streams are independent, so the width
+/// never changes a result.
+fn block_width(t: usize, m: usize, par: Par) -> usize {
+    let threads = match par {
+        Par::Seq => 1,
+        Par::Rayon => rayon::current_num_threads().max(1),
+    };
+    let want_blocks = if t * m >= super::par::PAR_MIN_WORK {
+        4 * threads
+    } else {
+        1
+    };
+    m.div_ceil(want_blocks).clamp(1, 256)
+}
+
+fn run<F: Real>(
+    steps: &Steps<'_, F>,
+    kind: Kind,
+    out_a: ArrayViewMut2<'_, F>,
+    out_b: Option<ArrayViewMut2<'_, F>>,
+    par: Par,
+) {
+    let (t, m) = steps.dims();
+    if t == 0 || m == 0 {
+        return;
+    }
+    let w = block_width(t, m, par);
+    let a_blocks = split_cols(out_a, w);
+    let b_blocks: Vec<Option<ArrayViewMut2<'_, F>>> = match out_b {
+        None => (0..a_blocks.len()).map(|_| None).collect(),
+        Some(b) => split_cols(b, w).into_iter().map(Some).collect(),
+    };
+    let items: Vec<_> = a_blocks
+        .into_iter()
+        .zip(b_blocks)
+        .enumerate()
+        .map(|(i, (a, b))| (i * w, a, b))
+        .collect();
+    par.for_each(items, |(m0, a, b)| run_block(steps, kind, m0, a, b));
+}
+
+/// Cut a `[T, M]` view into column blocks of width `w` (the last may be narrower).
+fn split_cols<F>(mut v: ArrayViewMut2<'_, F>, w: usize) -> Vec<ArrayViewMut2<'_, F>> {
+    let mut out = Vec::with_capacity(v.ncols().div_ceil(w.max(1)));
+    while v.ncols() > w {
+        let (a, b) = v.split_at(Axis(1), w);
+        out.push(a);
+        v = b;
+    }
+    out.push(v);
+    out
+}
+
+/// One block of streams `[m0, m0 + w)`, all rows, bottom-up in tiles.
+fn run_block<F: Real>(
+    steps: &Steps<'_, F>,
+    kind: Kind,
+    m0: usize,
+    mut out_a: ArrayViewMut2<'_, F>,
+    mut out_b: Option<ArrayViewMut2<'_, F>>,
+) {
+    let (t_len, _) = steps.dims();
+    let w = out_a.ncols();
+    let cols = s![.., m0..m0 + w];
+    let r = steps.rewards.slice(cols);
+    let v = steps.values.as_ref().map(|a| a.slice(cols));
+    let nv = steps.next_values.as_ref().map(|a| a.slice(cols));
+    let term = steps.terminated.as_ref().map(|a| a.slice(cols));
+    let trunc = steps.truncated.as_ref().map(|a| a.slice(cols));
+    let boot: Vec<f64> = match &steps.bootstrap {
+        Some(b) => b.slice(s![m0..m0 + w]).iter().map(|x| x.to_f64()).collect(),
+        None => vec![0.0; w],
+    };
+    let use_v = matches!(kind, Kind::Gae { .. });
+
+    let rows_per_tile = (TILE / w).max(1);
+    let cap = rows_per_tile * w;
+    let mut xs = vec![0.0f64; cap];
+    let mut cs = vec![0.0f64; cap];
+    let mut vs = vec![0.0f64; if use_v { cap } else { 0 }];
+    let mut nvs = vec![0.0f64; if nv.is_some() { cap } else { 0 }];
+    let mut tes = vec![false; cap];
+    let mut trs = vec![false; cap];
+    // y and V at the row just below the current tile.
+    let mut carry_y = vec![0.0f64; w];
+    let mut carry_v = boot.clone();
+
+    let mut t1 = t_len;
+    while t1 > 0 {
+        let t0 = t1.saturating_sub(rows_per_tile);
+        let rows = t1 - t0;
+        let n = rows * w;
+        let rs = s![t0..t1, ..];
+        gather(&r.slice(rs), &mut xs[..n]);
+        if let Some(v) = &v {
+            if use_v {
+                gather(&v.slice(rs), &mut vs[..n]);
+            }
+        }
+        if let Some(nv) = &nv {
+            gather(&nv.slice(rs), &mut nvs[..n]);
+        }
+        gather_flags(term.as_ref().map(|a| a.slice(rs)), &mut tes[..n]);
+        gather_flags(trunc.as_ref().map(|a| a.slice(rs)), &mut trs[..n]);
+
+        for i in (0..rows).rev() {
+            let last = t0 + i + 1 == t_len;
+            let row = i * w..(i + 1) * w;
+            let (x, c) = (&mut xs[row.clone()], &mut cs[row.clone()]);
+            let (te, tr) = (&tes[row.clone()], &trs[row.clone()]);
+            match kind {
+                Kind::Returns { gamma } => {
+                    for j in 0..w {
+                        let end = te[j] || tr[j] || last;
+                        if end {
+                            let vfix = if te[j] {
+                                0.0
+                            } else if !nvs.is_empty() {
+                                nvs[i * w + j]
+                            } else {
+                                // Only the last row reaches here (validated).
+                                boot[j]
+                            };
+                            x[j] += gamma * vfix;
+                            c[j] = 0.0;
+                        } else {
+                            c[j] = gamma;
+                        }
+                    }
+                }
+                Kind::Gae { gamma, lam } => {
+                    let gl = gamma * lam;
+                    for j in 0..w {
+                        let vt = vs[i * w + j];
+                        let vnext = if te[j] {
+                            0.0
+                        } else if !nvs.is_empty() {
+                            nvs[i * w + j]
+                        } else if i + 1 < rows {
+                            vs[(i + 1) * w + j]
+                        } else {
+                            carry_v[j]
+                        };
+                        x[j] = x[j] + gamma * vnext - vt;
+                        c[j] = if te[j] || tr[j] { 0.0 } else { gl };
+                    }
+                }
+            }
+            for j in 0..w {
+                let y = x[j] + c[j] * carry_y[j];
+                x[j] = y;
+                carry_y[j] = y;
+            }
+        }
+        if use_v {
+            carry_v.copy_from_slice(&vs[..w]);
+        }
+        scatter(&xs[..n], None, &mut out_a.slice_mut(rs));
+        if let Some(b) = &mut out_b {
+            scatter(&xs[..n], Some(&vs[..n]), &mut b.slice_mut(rs));
+        }
+        t1 = t0;
+    }
+}
+
+/// Copy a `[rows, w]` view into row-major `f64` scratch.
+fn gather<F: Real>(src: &ArrayView2<'_, F>, dst: &mut [f64]) {
+    let w = src.ncols();
+    match src.as_slice() {
+        Some(sl) => dst.iter_mut().zip(sl).for_each(|(d, s)| *d = s.to_f64()),
+        None => {
+            for (row, d) in src.rows().into_iter().zip(dst.chunks_mut(w.max(1))) {
+                d.iter_mut()
+                    .zip(row.iter())
+                    .for_each(|(d, s)| *d = s.to_f64());
+            }
+        }
+    }
+}
+
+fn gather_flags(src: Option<ArrayView2<'_, bool>>, dst: &mut [bool]) {
+    match src {
+        None => dst.fill(false),
+        Some(src) => {
+            let w = src.ncols().max(1);
+            match src.as_slice() {
+                Some(sl) => dst.copy_from_slice(sl),
+                None => {
+                    for (row, d) in src.rows().into_iter().zip(dst.chunks_mut(w)) {
+                        d.iter_mut().zip(row.iter()).for_each(|(d, s)| *d = *s);
+                    }
+                }
+            }
+        }
+    }
+}
+
+/// Store `y (+ add)` into a `[rows, w]` view, rounding once.
+fn scatter<F: Real>(y: &[f64], add: Option<&[f64]>, dst: &mut ArrayViewMut2<'_, F>) {
+    let w = dst.ncols().max(1);
+    match (dst.as_slice_mut(), add) {
+        (Some(d), None) => d.iter_mut().zip(y).for_each(|(o, &y)| *o = F::from_f64(y)),
+        (Some(d), Some(a)) => d
+            .iter_mut()
+            .zip(y)
+            .zip(a)
+            .for_each(|((o, &y), &a)| *o = F::from_f64(y + a)),
+        (None, _) => {
+            for (i, mut row) in dst.rows_mut().into_iter().enumerate() {
+                let ys = &y[i * w..(i + 1) * w];
+                match add {
+                    None => Zip::from(&mut row)
+                        .and(ys)
+                        .for_each(|o, &y| *o = F::from_f64(y)),
+                    Some(a) => {
+                        let a = &a[i * w..(i + 1) * w];
+                        Zip::from(&mut row)
+                            .and(ys)
+                            .and(a)
+                            .for_each(|o, &y, &a| *o = F::from_f64(y + a))
+                    }
+                }
+            }
+        }
+    }
+}
+
+/// The first `(t, m)` (row-major) where `a` is not finite.
+pub fn first_non_finite_2d<F: Real>(a: &ArrayView2<'_, F>, par: Par) -> Option<(usize, usize)> {
+    first_where(a, par, |x: &F| !x.finite())
+}
+
+fn check_finite_2d<F: Real>(name: &'static str, a: &ArrayView2<'_, F>, par: Par) -> CoreResult<()> {
+    match first_non_finite_2d(a, par) {
+        Some((t, m)) => Err(CoreError::non_finite(name, At::TimeStream(t, m))),
+        None => Ok(()),
+    }
+}
+
+fn first_true(a: &ArrayView2<'_, bool>, par: Par) -> Option<(usize, usize)> {
+    first_where(a, par, |x: &bool| *x)
+}
+
+/// Row-major first element satisfying `bad`, searched block-parallel.
+fn first_where<T: Sync, P: Fn(&T) -> bool + Sync>(
+    a: &ArrayView2<'_, T>,
+    par: Par,
+    bad: P,
+) -> Option<(usize, usize)> {
+    let (rows, cols) = a.dim();
+    if rows == 0 || cols == 0 {
+        return None;
+    }
+    let rows_per = (TILE * 4 / cols).max(1);
+    let starts: Vec<usize> = (0..rows).step_by(rows_per).collect();
+    let found = par.map(starts, |r0| {
+        let r1 = (r0 + rows_per).min(rows);
+        let blk = a.slice(s![r0..r1, ..]);
+        if let Some(sl) = blk.as_slice() {
+            // Contiguous: a quick all-pass first, the position only on failure.
+            if !sl.iter().any(&bad) {
+                return None;
+            }
+            return sl.iter().position(&bad).map(|k| (r0 + k / cols, k % cols));
+        }
+        blk.rows()
+            .into_iter()
+            .enumerate()
+            .find_map(|(i, row)| row.iter().position(&bad).map(|j| (r0 + i, j)))
+    });
+    found.into_iter().flatten().next()
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use ndarray::{Array1, Array2, ShapeBuilder};
+
+    /// A direct transcription of the definitions, one stream at a time.
+    fn reference(
+        r: &Array2<f64>,
+        v: &Array2<f64>,
+        term: &Array2<bool>,
+        trunc: &Array2<bool>,
+        nv: Option<&Array2<f64>>,
+        boot: &Array1<f64>,
+        gamma: f64,
+        lam: f64,
+    ) -> (Array2<f64>, Array2<f64>, Array2<f64>) {
+        let (t_len, m_len) = r.dim();
+        let mut adv = Array2::zeros((t_len, m_len));
+        let mut ret = Array2::zeros((t_len, m_len));
+        let mut g = Array2::zeros((t_len, m_len));
+        for m in 0..m_len {
+            let mut a_next = 0.0;
+            let mut g_next = 0.0;
+            for t in (0..t_len).rev() {
+                let end = term[[t, m]] || trunc[[t, m]];
+                let vp = if term[[t, m]] {
+                    0.0
+                } else if let Some(nv) = nv {
+                    nv[[t, m]]
+                } else if t + 1 < t_len {
+                    v[[t + 1, m]]
+                } else {
+                    boot[m]
+                };
+                let delta = r[[t, m]] + gamma * vp - v[[t, m]];
+                let a = delta + if end { 0.0 } else { gamma * lam * a_next };
+                adv[[t, m]] = a;
+                ret[[t, m]] = a + v[[t, m]];
+                a_next = a;
+                let x = if term[[t, m]] {
+                    0.0
+                } else if trunc[[t, m]] || (t + 1 == t_len && nv.is_some()) {
+                    nv.unwrap()[[t, m]]
+                } else if t + 1 == t_len {
+                    boot[m]
+                } else {
+                    g_next
+                };
+                let gt = r[[t, m]] + gamma * x;
+                g[[t, m]] = gt;
+                g_next = gt;
+            }
+        }
+        (adv, ret, g)
+    }
+
+    fn lcg(seed: &mut u64) -> f64 {
+        *seed = seed
+            .wrapping_mul(6364136223846793005)
+            .wrapping_add(1442695040888963407);
+        ((*seed >> 11) as f64) / ((1u64 << 53) as f64)
+    }
+
+    #[test]
+    fn gae_and_returns_match_reference_in_all_layouts() {
+        let mut seed = 7u64;
+        for &(t_len, m_len) in &[
+            (1usize, 1usize),
+            (5, 3),
+            (37, 9),
+            (300, 300),
+            (2000, 2),
+            (3, 700),
+        ] {
+            let r = Array2::from_shape_fn((t_len, m_len), |_| lcg(&mut seed) * 2.0 - 1.0);
+            let v = Array2::from_shape_fn((t_len, m_len), |_| lcg(&mut seed));
+            let nv = Array2::from_shape_fn((t_len, m_len), |_| lcg(&mut seed));
+            let term = Array2::from_shape_fn((t_len, m_len), |_| lcg(&mut seed) < 0.05);
+            let trunc = Array2::from_shape_fn((t_len, m_len), |_| lcg(&mut seed) < 0.05);
+            let boot = Array1::from_shape_fn(m_len, |_| lcg(&mut seed));
+            let none = Array2::from_elem((t_len, m_len), false);
+            let (g, l) = (0.97, 0.9);
+            for par in [Par::Seq, Par::Rayon] {
+                // With next_values and truncations.
+                let (ra, rr, rg) = reference(&r, &v, &term, &trunc, Some(&nv), &boot, g, l);
+                let steps = Steps {
+                    values: Some(v.view()),
+                    next_values: Some(nv.view()),
+                    terminated: Some(term.view()),
+                    truncated: Some(trunc.view()),
+                    ..Steps::new(r.view())
+                };
+                let mut a = Array2::zeros((t_len, m_len));
+                let mut b = Array2::zeros((t_len, m_len).f());
+                gae(&steps, g, l, None, true, a.view_mut(), b.view_mut(), par).unwrap();
+                assert!(a.iter().zip(ra.iter()).all(|(x, y)| (x - y).abs() < 1e-12));
+                assert!(b.iter().zip(rr.iter()).all(|(x, y)| (x - y).abs() < 1e-12));
+                let mut gr = Array2::zeros((t_len, m_len));
+                discounted_returns(&steps, g, true, gr.view_mut(), par).unwrap();
+                assert!(gr.iter().zip(rg.iter()).all(|(x, y)| (x - y).abs() < 1e-12));
+                // Bootstrap, no truncation, Fortran-order inputs.
+                let rf = {
+                    let mut x = Array2::zeros((t_len, m_len).f());
+                    x.assign(&r);
+                    x
+                };
+                let (ra, _, rg) = reference(&r, &v, &term, &none, None, &boot, g, l);
+                let steps = Steps {
+                    values: Some(v.view()),
+                    terminated: Some(term.view()),
+                    bootstrap: Some(boot.view()),
+                    ..Steps::new(rf.view())
+                };
+                gae(&steps, g, l, None, true, a.view_mut(), b.view_mut(), par).unwrap();
+                assert!(a.iter().zip(ra.iter()).all(|(x, y)| (x - y).abs() < 1e-12));
+                discounted_returns(&steps, g, true, gr.view_mut(), par).unwrap();
+                assert!(gr.iter().zip(rg.iter()).all(|(x, y)| (x - y).abs() < 1e-12));
+            }
+        }
+    }
+
+    #[test]
+    fn thread_count_does_not_change_bits() {
+        let r = Array2::from_shape_fn((513, 333), |(i, j)| {
+            ((i * 31 + j * 17) % 23) as f32 * 0.1 - 1.0
+        });
+        let v = Array2::from_shape_fn((513, 333), |(i, j)| ((i * 7 + j) % 11) as f32 * 0.2);
+        let term = Array2::from_shape_fn((513, 333), |(i, j)| (i * 13 + j * 5) % 41 == 0);
+        let steps = Steps {
+            values: Some(v.view()),
+            terminated: Some(term.view()),
+            ..Steps::new(r.view())
+        };
+        let mut a1 = Array2::zeros((513, 333));
+        let mut b1 = Array2::zeros((513, 333));
+        let mut a2 = Array2::zeros((513, 333));
+        let mut b2 = Array2::zeros((513, 333));
+        gae(
+            &steps,
+            0.99,
+            0.95,
+            Some(1e-8),
+            true,
+            a1.view_mut(),
+            b1.view_mut(),
+            Par::Seq,
+        )
+        .unwrap();
+        gae(
+            &steps,
+            0.99,
+            0.95,
+            Some(1e-8),
+            true,
+            a2.view_mut(),
+            b2.view_mut(),
+            Par::Rayon,
+        )
+        .unwrap();
+        assert_eq!(a1, a2);
+        assert_eq!(b1, b2);
+    }
+
+    #[test]
+    fn errors_name_argument_and_first_index() {
+        let mut r = Array2::<f64>::zeros((4, 3));
+        let trunc = Array2::from_shape_fn((4, 3), |(t, m)| t == 2 && m >= 1);
+        let steps = Steps {
+            truncated: Some(trunc.view()),
+            ..Steps::new(r.view())
+        };
+        let mut out = Array2::zeros((4, 3));
+        let e = discounted_returns(&steps, 0.9, true, out.view_mut(), Par::Seq).unwrap_err();
+        assert_eq!(
+            e,
+            CoreError::input_at(
+                "truncated",
+                At::TimeStream(2, 1),
+                "is True but next_values is not given: truncated steps need next_values to bootstrap from"
+            )
+        );
+        r[[3, 2]] = f64::NAN;
+        r[[1, 0]] = f64::INFINITY;
+        let steps = Steps::new(r.view());
+        let e = discounted_returns(&steps, 0.9, true, out.view_mut(), Par::Seq).unwrap_err();
+        assert_eq!(e, CoreError::non_finite("rewards", At::TimeStream(1, 0)));
+        assert!(discounted_returns(&steps, 0.9, false, out.view_mut(), Par::Seq).is_ok());
+        assert!(out[[3, 2]].is_nan());
+        let e = discounted_returns(&steps, 1.5, false, out.view_mut(), Par::Seq).unwrap_err();
+        assert!(matches!(e, CoreError::Input { arg: "gamma", .. }));
+        let bad = Array2::<f64>::zeros((4, 2));
+        let steps = Steps {
+            values: Some(bad.view()),
+            ..Steps::new(r.view())
+        };
+        let mut a = Array2::zeros((4, 3));
+        let mut b = Array2::zeros((4, 3));
+        let e = gae(
+            &steps,
+            0.9,
+            0.9,
+            None,
+            false,
+            a.view_mut(),
+            b.view_mut(),
+            Par::Seq,
+        )
+        .unwrap_err();
+        assert!(matches!(e, CoreError::Shape(_)));
+    }
+
+    #[test]
+    fn empty_buffers_are_fine() {
+        let r = Array2::<f32>::zeros((0, 4));
+        let mut out = Array2::<f32>::zeros((0, 4));
+        discounted_returns(&Steps::new(r.view()), 0.9, true, out.view_mut(), Par::Rayon).unwrap();
+        let r = Array2::<f32>::zeros((4, 0));
+        let mut out = Array2::<f32>::zeros((4, 0));
+        discounted_returns(&Steps::new(r.view()), 0.9, true, out.view_mut(), Par::Rayon).unwrap();
+    }
+}

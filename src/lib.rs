@@ -1,0 +1,14 @@
+//! rollscan: fast, exact post-processing of reinforcement-learning rollouts.
+//!
+//! The crate has two layers, and dependencies only point one way:
+//!
+//! * [`core`] — pure Rust kernels over `ndarray` views and slices. No PyO3
+//!   types, every failure is a [`core::CoreError`]; `cargo test` exercises it
+//!   without a Python interpreter.
+//! * `bindings` — the thin PyO3 layer: extract and validate Python arguments,
+//!   release the GIL, run the core on the crate's Rayon pool, map errors to
+//!   the Python exception hierarchy.
+
+pub mod core;
+
+mod bindings;
