@@ -12,6 +12,7 @@
 
 pub mod error;
 pub mod float;
+pub mod heads;
 pub mod par;
 pub mod ragged;
 pub mod scan;
