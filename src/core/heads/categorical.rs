@@ -11,8 +11,9 @@
 //! d log p(a) / d x_j = [j = a] - e^{z_j} / S
 //! ```
 //!
-//! and the KL divergence `KL(p || q) = (1/S_p) sum_j e^{zp_j} (zp_j - zq_j)
-//! + ln S_q - ln S_p`, which is exactly 0 for `p = q`. Logits of any finite
+//! and the KL divergence
+//! `KL(p || q) = (1/S_p) sum_j e^{zp_j} (zp_j - zq_j) + ln S_q - ln S_p`,
+//! which is exactly 0 for `p = q`. Logits of any finite
 //! size (`+-1e30`) give finite results: only differences to the row maximum
 //! are exponentiated.
 
@@ -284,7 +285,7 @@ impl Gathered {
 
     /// Whether any row may hold a logits / mask error.
     fn suspect(&self, masked: bool) -> bool {
-        any_nan(&self.chk) || (masked && self.m.iter().any(|&v| v == f64::NEG_INFINITY))
+        any_nan(&self.chk) || (masked && self.m.contains(&f64::NEG_INFINITY))
     }
 
     /// `z -= max` per row; returns `e = exp(z)`.

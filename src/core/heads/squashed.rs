@@ -53,7 +53,7 @@ impl Bounds {
         };
         let low = expand(low, "low")?;
         let high = expand(high, "high")?;
-        if let Some(j) = (0..d).find(|&j| !(low[j] < high[j])) {
+        if let Some(j) = (0..d).find(|&j| low[j] >= high[j]) {
             return Err(CoreError::input(
                 "high",
                 format!(
