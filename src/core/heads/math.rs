@@ -286,7 +286,7 @@ mod tests {
 
     #[test]
     fn squash_helpers_are_stable() {
-        for &u in &[-40.0, -25.0, -3.0, -1e-9, 0.0, 1e-9, 0.7, 25.0, 40.0, 400.0] {
+        for &u in &[-40.0f64, -25.0, -3.0, -1e-9, 0.0, 1e-9, 0.7, 25.0, 40.0, 400.0] {
             let direct = (1.0 - u.tanh().powi(2)).ln();
             let s = log1m_tanh2(u);
             assert!(s.is_finite());
