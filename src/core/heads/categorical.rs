@@ -17,11 +17,11 @@
 //! size (`+-1e30`) give finite results: only differences to the row maximum
 //! are exponentiated.
 
-use super::math::{exp_inplace, ln_inplace};
+use super::math::{exp_inplace, ln_inplace, simd};
 use super::rng::Stream;
 use super::{
-    any_nan, batch_shape, broadcast, first_error, gather_col, row_starts, same_shape, scatter_col,
-    split_last, Actions, At, Layout,
+    any_nan, batch_shape, broadcast, first_error, gather_t, row_starts, same_shape, scatter_col,
+    scatter_t, split_last, to2_mut, Actions, At, Layout,
 };
 use crate::core::error::{CoreError, CoreResult};
 use crate::core::float::Real;
@@ -190,7 +190,9 @@ pub fn categorical<F: Real>(
         })
         .collect();
     let check = lg.check_finite;
-    let results = layout.par(par).map(items, |b| b.run(pick, check));
+    let results = layout
+        .par(par)
+        .map(items, |b| simd(#[inline(always)] || b.run(pick, check)));
     first_error(results)
 }
 
@@ -216,6 +218,7 @@ struct Gathered {
     chk: Vec<f64>,
 }
 
+#[inline(always)]
 fn gather<F: Real>(
     x: &ArrayView2<'_, F>,
     mask: Option<&ArrayView2<'_, bool>>,
@@ -223,29 +226,32 @@ fn gather<F: Real>(
 ) -> Gathered {
     let (n, k) = x.dim();
     let mut z = vec![0.0; n * k];
+    gather_t(x, &mut z, |v| v.to_f64());
     let mut m = vec![f64::NEG_INFINITY; n];
     let mut chk = vec![0.0; if check { n } else { 0 }];
+    let mt = mask.map(|mk| {
+        let mut mt = vec![false; n * k];
+        gather_t(mk, &mut mt, |v| v);
+        mt
+    });
     for j in 0..k {
         let zc = &mut z[j * n..(j + 1) * n];
-        gather_col(x.column(j), zc);
-        match mask {
+        match &mt {
             None => {
                 if check {
-                    chk.iter_mut()
-                        .zip(zc.iter())
-                        .for_each(|(c, &v)| *c += v * 0.0);
+                    chk.iter_mut().zip(zc.iter()).for_each(|(c, &v)| *c += v * 0.0);
                 }
             }
-            Some(mk) => {
-                let mc = mk.column(j);
+            Some(mt) => {
+                let mc = &mt[j * n..(j + 1) * n];
                 if check {
                     chk.iter_mut()
                         .zip(zc.iter())
-                        .zip(mc.iter())
+                        .zip(mc)
                         .for_each(|((c, &v), &a)| *c += if a { v * 0.0 } else { 0.0 });
                 }
                 zc.iter_mut()
-                    .zip(mc.iter())
+                    .zip(mc)
                     .for_each(|(v, &a)| *v = if a { *v } else { f64::NEG_INFINITY });
             }
         }
@@ -289,6 +295,7 @@ impl Gathered {
     }
 
     /// `z -= max` per row; returns `e = exp(z)`.
+    #[inline(always)]
     fn shift_exp(&mut self) -> Vec<f64> {
         let n = self.n;
         for j in 0..self.k {
@@ -304,6 +311,7 @@ impl Gathered {
 }
 
 impl<F: Real> Block<'_, '_, F> {
+    #[inline(always)]
     fn run(self, pick: Pick, check: bool) -> CoreResult<()> {
         let mut g = gather(&self.x, self.mask.as_ref(), check);
         let (n, k) = (g.n, g.k);
@@ -388,20 +396,6 @@ impl<F: Real> Block<'_, '_, F> {
             let v: Vec<f64> = (0..n).map(|r| lns[r] - t[r] / s[r]).collect();
             write_rows(&v, o);
         }
-        if let Some(o) = self.score {
-            let mut o = o.into_dimensionality::<Ix2>().expect("2-D block");
-            let mut col = vec![0.0; n];
-            for j in 0..k {
-                let ec = &e[j * n..(j + 1) * n];
-                col.iter_mut()
-                    .zip(ec)
-                    .zip(s.iter().zip(&act))
-                    .for_each(|((c, &e), (&s, &a))| {
-                        *c = if a == j as i64 { 1.0 } else { 0.0 } - e / s;
-                    });
-                scatter_col(&col, o.column_mut(j));
-            }
-        }
         if let Pick::Sample(seed) = pick {
             let idx: Vec<i64> = (0..n)
                 .map(|r| {
@@ -423,6 +417,18 @@ impl<F: Real> Block<'_, '_, F> {
                 })
                 .collect();
             write_index(&idx, self.index);
+        }
+        if let Some(o) = self.score {
+            let mut sc = e;
+            for j in 0..k {
+                sc[j * n..(j + 1) * n]
+                    .iter_mut()
+                    .zip(s.iter().zip(&act))
+                    .for_each(|(c, (&s, &a))| {
+                        *c = if a == j as i64 { 1.0 } else { 0.0 } - *c / s;
+                    });
+            }
+            scatter_t(&sc, to2_mut(o));
         }
         Ok(())
     }
@@ -495,7 +501,7 @@ pub fn categorical_kl<F: Real>(
         })
         .collect();
     let check = p.check_finite;
-    let results = layout.par(par).map(items, |(row0, xp, xq, mk, o)| {
+    let results = layout.par(par).map(items, |(row0, xp, xq, mk, o)| simd(#[inline(always)] || {
         let mut gp = gather(&xp, mk.as_ref(), check);
         let mut gq = gather(&xq, mk.as_ref(), check);
         let (n, k) = (gp.n, gp.k);
@@ -542,7 +548,7 @@ pub fn categorical_kl<F: Real>(
             .collect();
         write_rows(&kl, o);
         Ok(())
-    });
+    }));
     first_error(results)
 }
 

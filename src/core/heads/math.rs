@@ -122,60 +122,125 @@ fn ln_loop<const FMA: bool>(x: &mut [f64]) {
     }
 }
 
-#[cfg(target_arch = "x86_64")]
-#[target_feature(enable = "avx2,fma")]
-fn exp_avx2(x: &mut [f64]) {
-    exp_loop::<true>(x)
+/// The instruction set the loops run with on this CPU.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+enum Isa {
+    Base,
+    Avx2,
+    Avx512,
 }
 
-#[cfg(target_arch = "x86_64")]
-#[target_feature(enable = "avx2,fma")]
-fn ln_avx2(x: &mut [f64]) {
-    ln_loop::<true>(x)
+fn isa() -> Isa {
+    use std::sync::atomic::{AtomicU8, Ordering};
+    static ISA: AtomicU8 = AtomicU8::new(0);
+    match ISA.load(Ordering::Relaxed) {
+        1 => Isa::Base,
+        2 => Isa::Avx2,
+        3 => Isa::Avx512,
+        _ => {
+            let found = detect();
+            ISA.store(
+                match found {
+                    Isa::Base => 1,
+                    Isa::Avx2 => 2,
+                    Isa::Avx512 => 3,
+                },
+                Ordering::Relaxed,
+            );
+            found
+        }
+    }
 }
 
-#[inline]
-fn has_avx2_fma() -> bool {
+fn detect() -> Isa {
     #[cfg(target_arch = "x86_64")]
     {
-        std::is_x86_feature_detected!("avx2") && std::is_x86_feature_detected!("fma")
+        if std::is_x86_feature_detected!("avx2") && std::is_x86_feature_detected!("fma") {
+            if std::is_x86_feature_detected!("avx512f") {
+                return Isa::Avx512;
+            }
+            return Isa::Avx2;
+        }
     }
-    #[cfg(not(target_arch = "x86_64"))]
-    {
-        false
-    }
+    Isa::Base
 }
 
-/// `x[i] = exp(x[i])` in place (subnormal results flush to 0).
-pub fn exp_inplace(x: &mut [f64]) {
-    #[cfg(target_arch = "x86_64")]
-    if has_avx2_fma() {
-        // SAFETY: the CPU supports AVX2 and FMA, checked just above.
-        unsafe { exp_avx2(x) };
-        return;
-    }
-    exp_loop::<false>(x)
+macro_rules! multiversion {
+    ($(#[$m:meta])* fn $name:ident($x:ident: &mut [f64]) => $body:ident) => {
+        $(#[$m])*
+        pub fn $name($x: &mut [f64]) {
+            #[cfg(target_arch = "x86_64")]
+            {
+                #[target_feature(enable = "avx2,fma")]
+                fn avx2(x: &mut [f64]) {
+                    $body::<true>(x)
+                }
+                #[target_feature(enable = "avx512f,avx2,fma")]
+                fn avx512(x: &mut [f64]) {
+                    $body::<true>(x)
+                }
+                match isa() {
+                    // SAFETY: `isa()` found these features on this CPU.
+                    Isa::Avx512 => return unsafe { avx512($x) },
+                    // SAFETY: as above.
+                    Isa::Avx2 => return unsafe { avx2($x) },
+                    Isa::Base => {}
+                }
+            }
+            $body::<false>($x)
+        }
+    };
+}
+
+multiversion! {
+    /// `x[i] = exp(x[i])` in place (subnormal results flush to 0).
+    fn exp_inplace(x: &mut [f64]) => exp_loop
+}
+
+multiversion! {
+    /// `ln` of positive normal finite values (see [`ln_inplace`]).
+    fn ln_normal_inplace(x: &mut [f64]) => ln_loop
 }
 
 /// `x[i] = ln(x[i])` in place, exact IEEE semantics for 0, negatives, inf,
 /// NaN and subnormals.
 pub fn ln_inplace(x: &mut [f64]) {
-    let special = x.iter().fold(false, |a, &v| {
-        a | !(f64::MIN_POSITIVE..f64::INFINITY).contains(&v)
-    });
+    let special = x
+        .iter()
+        .fold(false, |a, &v| a | !(f64::MIN_POSITIVE..f64::INFINITY).contains(&v));
     if special {
         // Rare: take the standard library for everything (same results where
         // both are defined, to the last ulp or so).
         x.iter_mut().for_each(|v| *v = v.ln());
         return;
     }
+    ln_normal_inplace(x)
+}
+
+/// Run `f` compiled for the widest vector unit of this CPU: `f` (and what it
+/// inlines) gets AVX2 or AVX-512 code. Plain arithmetic rounds the same on
+/// every unit, so the result never depends on which one runs.
+#[inline(always)]
+pub fn simd<R>(f: impl FnOnce() -> R) -> R {
     #[cfg(target_arch = "x86_64")]
-    if has_avx2_fma() {
-        // SAFETY: the CPU supports AVX2 and FMA, checked just above.
-        unsafe { ln_avx2(x) };
-        return;
+    {
+        #[target_feature(enable = "avx2,fma")]
+        fn avx2<R>(f: impl FnOnce() -> R) -> R {
+            f()
+        }
+        #[target_feature(enable = "avx512f,avx2,fma")]
+        fn avx512<R>(f: impl FnOnce() -> R) -> R {
+            f()
+        }
+        match isa() {
+            // SAFETY: `isa()` found these features on this CPU.
+            Isa::Avx512 => return unsafe { avx512(f) },
+            // SAFETY: as above.
+            Isa::Avx2 => return unsafe { avx2(f) },
+            Isa::Base => {}
+        }
     }
-    ln_loop::<false>(x)
+    f()
 }
 
 /// `exp` of one value (same algorithm as [`exp_inplace`], no dispatch).

@@ -369,6 +369,58 @@ pub(crate) fn gather_col<F: Real>(src: ArrayView1<'_, F>, dst: &mut [f64]) {
     }
 }
 
+/// Copy a `[n, k]` block into column-major scratch (`z[j * n + r] = f(x[r, j])`).
+/// A C-contiguous block is read in memory order.
+#[inline(always)]
+pub(crate) fn gather_t<T: Copy, U>(
+    x: &ndarray::ArrayView2<'_, T>,
+    z: &mut [U],
+    f: impl Fn(T) -> U,
+) {
+    let (n, k) = x.dim();
+    match x.as_slice() {
+        Some(s) if k > 0 => {
+            assert!(s.len() == n * k && z.len() >= n * k);
+            for (j, zc) in z.chunks_exact_mut(n).enumerate().take(k) {
+                for (r, d) in zc.iter_mut().enumerate() {
+                    // SAFETY: r < n and j < k, so r * k + j < n * k = s.len().
+                    *d = f(unsafe { *s.get_unchecked(r * k + j) });
+                }
+            }
+        }
+        _ => {
+            for (j, zc) in z.chunks_exact_mut(n.max(1)).enumerate().take(k) {
+                let col = x.column(j);
+                match col.as_slice() {
+                    Some(c) => zc.iter_mut().zip(c).for_each(|(d, &v)| *d = f(v)),
+                    None => zc.iter_mut().zip(col.iter()).for_each(|(d, &v)| *d = f(v)),
+                }
+            }
+        }
+    }
+}
+
+/// Store column-major `f64` scratch into a `[n, k]` output block, rounding
+/// once; a C-contiguous block is written in memory order.
+#[inline(always)]
+pub(crate) fn scatter_t<F: Real>(z: &[f64], mut o: ndarray::ArrayViewMut2<'_, F>) {
+    let (n, k) = o.dim();
+    match o.as_slice_mut() {
+        Some(s) if k > 0 => {
+            for (r, row) in s.chunks_exact_mut(k).enumerate() {
+                for (j, v) in row.iter_mut().enumerate() {
+                    *v = F::from_f64(z[j * n + r]);
+                }
+            }
+        }
+        _ => {
+            for (j, zc) in z.chunks_exact(n.max(1)).enumerate().take(k) {
+                scatter_col(zc, o.column_mut(j));
+            }
+        }
+    }
+}
+
 /// Store `f64` values into a (strided) output column, rounding once.
 #[inline]
 pub(crate) fn scatter_col<F: Real>(src: &[f64], mut dst: ndarray::ArrayViewMut1<'_, F>) {
