@@ -54,7 +54,7 @@ def ragged_buffer(rng, lengths, *, p_terminal=0.6):
 def as_one_stream(lengths, terminal, tail_values, values):
     """The time-major flags of a ragged layout seen as one stream: terminated at
     terminal piece ends, truncated with next_values = tail_values at the other
-    piece ends, next_values = values[t+1] inside pieces (API.md section 3)."""
+    piece ends, next_values = values[t+1] inside pieces (contract section 3)."""
     lengths = np.asarray(lengths, dtype=np.int64)
     s = int(lengths.sum())
     values = np.asarray(values, dtype=np.float64)
@@ -92,7 +92,7 @@ def _shapes_in(msg):
 
 
 def assert_names_shapes(msg, names, shapes):
-    """ShapeError rule (API.md section 1): names both arguments and both shapes."""
+    """ShapeError rule (contract section 1): names both arguments and both shapes."""
     for name in names:
         assert name in msg, f"{name!r} not named in {msg!r}"
     found = _shapes_in(msg)
@@ -109,6 +109,6 @@ def mentions_index(msg, index):
 
 
 def assert_names_index(msg, name, index):
-    """InputError rule (API.md section 1): names the argument and the index."""
+    """InputError rule (contract section 1): names the argument and the index."""
     assert name in msg, f"{name!r} not named in {msg!r}"
     assert mentions_index(msg, index), f"index {index} not in {msg!r}"

@@ -1,6 +1,6 @@
 """Plain NumPy float64 reference implementations of the core kernels.
 
-Written from the definitions in the public contract (shared API.md, sections
+Written from the definitions in the public contract (sections
 2 and 3), not from the Rust code: simple backward loops over time, vectorised
 over streams only. Everything is computed in float64.
 """
@@ -51,7 +51,7 @@ def discounted_returns(
     bootstrap=None,
     time_axis=0,
 ):
-    """API.md section 2:
+    """contract section 2:
 
     G_t = r_t + gamma * X_t
     X_t = 0               if terminated_t
@@ -93,7 +93,7 @@ def gae(
     eps=1e-8,
     time_axis=0,
 ):
-    """API.md section 2 (Schulman et al. 2016, eq. 16):
+    """contract section 2 (Schulman et al. 2016, eq. 16):
 
     V'_t    = 0 if terminated_t; next_values[t] if given;
               values[t+1] if t < T-1 and not truncated_t; bootstrap at T-1
@@ -129,7 +129,7 @@ def gae(
 
 
 def normalize(x, *, eps=1e-8, ddof=0, mask=None):
-    """API.md section 2: (x - mean) / (std + eps) over the selected elements,
+    """contract section 2: (x - mean) / (std + eps) over the selected elements,
     the rest copied unchanged (NumPy mean/std with ddof)."""
     x = np.asarray(x, dtype=np.float64)
     sel = np.ones(x.shape, dtype=bool) if mask is None else np.asarray(mask, dtype=bool)
@@ -146,7 +146,7 @@ def _piece_bounds(lengths):
 
 
 def ragged_discounted_returns(rewards, lengths, *, gamma, terminal=None, tail_values=None):
-    """API.md section 3: per piece, G = r + gamma * G_next inside, and at the
+    """contract section 3: per piece, G = r + gamma * G_next inside, and at the
     last step G = r + gamma * (0 if terminal[e] else tail_values[e])."""
     r = np.asarray(rewards, dtype=np.float64)
     starts, lens = _piece_bounds(lengths)
@@ -176,7 +176,7 @@ def ragged_gae(
     normalize=False,
     eps=1e-8,
 ):
-    """API.md section 3 with the per-piece ``tail_advantages`` keyword: at the
+    """contract section 3 with the per-piece ``tail_advantages`` keyword: at the
     last step of a piece V' = 0 if terminal else tail_values[e], and the
     advantage carried in is 0 if terminal else tail_advantages[e] (default 0)."""
     r = np.asarray(rewards, dtype=np.float64)
@@ -202,7 +202,7 @@ def ragged_gae(
 
 
 def ragged_episode_sums(x, lengths, *, gamma=1.0):
-    """API.md section 3: per piece sum_k gamma^k x[start_e + k] (0 if empty)."""
+    """contract section 3: per piece sum_k gamma^k x[start_e + k] (0 if empty)."""
     x = np.asarray(x, dtype=np.float64)
     starts, lens = _piece_bounds(lengths)
     out = np.zeros(len(lens))

@@ -1,7 +1,7 @@
-"""Time-major returns, GAE and normalisation (API.md sections 1-2).
+"""Time-major returns, GAE and normalisation (contract sections 1-2).
 
 References: the plain NumPy float64 loops in tests/reference.py, written from
-the definitions in API.md; published checks name their source beside them.
+the definitions in the public contract; published checks name their source beside them.
 """
 
 from __future__ import annotations
@@ -17,7 +17,7 @@ import scipy.signal
 from helpers import F32_RTOL, scale_atol, timemajor_buffer
 from numpy.testing import assert_allclose, assert_array_equal
 
-# (shape, time_axis): every layout of API.md section 2, every time axis,
+# (shape, time_axis): every layout of contract section 2, every time axis,
 # negative ones included.
 LAYOUTS = [
     ((13,), 0),
@@ -52,7 +52,7 @@ def _assert_close64(got, want):
 
 
 def _assert_rounded_once(got, want64):
-    """float32 result == the float64 result rounded once (API.md section 1)."""
+    """float32 result == the float64 result rounded once (contract section 1)."""
     assert got.dtype == np.float32
     assert_allclose(got, want64.astype(np.float32), rtol=F32_RTOL, atol=scale_atol(want64))
 
@@ -115,7 +115,7 @@ def test_gae_normalize_matches_reference(rng, shape, time_axis):
             **kw,
         )
         assert_allclose(adv, want_adv, rtol=1e-10, atol=1e-12)
-        # returns stay un-normalised (API.md section 2)
+        # returns stay un-normalised (contract section 2)
         _assert_close64(ret, want_ret)
         raw, _ = rollscan.gae(d["rewards"], d["values"], d["terminated"], gamma=0.97, lam=0.9, **kw)
         assert_allclose(ret, raw + d["values"], rtol=1e-12, atol=1e-12)
@@ -138,7 +138,7 @@ def test_terminated_none_means_no_episode_end(rng):
 
 
 def test_truncation_rules_worked_by_hand():
-    # Worked by hand from the API.md section 2 definition (no outside source).
+    # Worked by hand from the contract section 2 definition (no outside source).
     r = np.array([1.0, 1.0, 1.0, 1.0])
     term = np.array([False, False, False, True])
     trunc = np.array([False, True, False, False])
@@ -214,7 +214,7 @@ def test_gae_lam0_is_td_error(rng, kind):
 def test_gae_lam1_is_return_minus_value(rng, kind):
     # Schulman et al. 2016, eq. 18: GAE(gamma, 1) = sum_l gamma^l r_{t+l} - V(s_t)
     # (bootstrapped at the rollout end / at cuts), i.e. the discounted return minus
-    # the value; API.md: lam=1 gives returns == discounted_returns(...) whenever
+    # the value; the contract: lam=1 gives returns == discounted_returns(...) whenever
     # next_values agrees with values[t+1] inside episodes (timemajor_buffer does so).
     d = timemajor_buffer(rng, (30, 4), kind=kind)
     kw = _returns_kwargs(d, 0)
