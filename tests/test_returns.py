@@ -629,3 +629,46 @@ def test_public_names_are_exported():
     assert issubclass(rollscan.ShapeError, ValueError)
     assert issubclass(rollscan.InputError, ValueError)
     assert rollscan.ShapeError.__module__ == "rollscan"
+
+
+def test_memmap_inputs(rng, tmp_path):
+    # memmaps are accepted like any array (contract section 1)
+    r = rng.normal(size=(20, 3))
+    term = rng.random((20, 3)) < 0.2
+    mr = np.memmap(tmp_path / "rewards.bin", dtype=np.float64, mode="w+", shape=(20, 3))
+    mr[:] = r
+    mr.flush()
+    ro = np.memmap(tmp_path / "rewards.bin", dtype=np.float64, mode="r", shape=(20, 3))
+    assert_array_equal(
+        rollscan.discounted_returns(ro, term, gamma=0.9),
+        rollscan.discounted_returns(r, term, gamma=0.9),
+    )
+    assert_array_equal(
+        rollscan.ragged.discounted_returns(ro[:, 1], [5, 15], gamma=0.9),
+        rollscan.ragged.discounted_returns(r[:, 1].copy(), [5, 15], gamma=0.9),
+    )
+
+
+def test_scalar_bootstrap_is_cast(rng):
+    # Python scalars are cast to the promoted dtype: float32 stays float32
+    r32 = rng.normal(size=6).astype(np.float32)
+    got = rollscan.discounted_returns(r32, gamma=0.9, bootstrap=2.5)
+    assert got.dtype == np.float32
+    want = ref.discounted_returns(r32, gamma=0.9, bootstrap=2.5)
+    _assert_rounded_once(got, want)
+    # the docstring also allows a scalar bootstrap for every stream
+    r = rng.normal(size=(6, 3))
+    got = rollscan.discounted_returns(r, gamma=0.9, bootstrap=2.5)
+    _assert_close64(got, ref.discounted_returns(r, gamma=0.9, bootstrap=np.full(3, 2.5)))
+
+
+def test_gae_out_with_normalize(rng):
+    r = rng.normal(size=(15, 2))
+    v = rng.normal(size=(15, 2))
+    want_adv, want_ret = rollscan.gae(r, v, gamma=0.9, lam=0.9, normalize=True)
+    oa, orr = np.empty((15, 2)), np.empty((2, 15)).T
+    res = rollscan.gae(r, v, gamma=0.9, lam=0.9, normalize=True, out=(oa, orr))
+    assert res[0] is oa
+    assert res[1] is orr
+    assert_allclose(oa, want_adv, rtol=1e-13, atol=1e-13)
+    assert_array_equal(orr, want_ret)
