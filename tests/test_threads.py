@@ -249,7 +249,7 @@ def test_forked_child_can_run_kernels(rng, restore_threads):
                 terminal=rg["terminal"],
                 tail_values=rg["tail_values"],
             )
-            ok = ok and np.array_equal(again, want[5])
+            ok = ok and np.array_equal(again, want[7])
             code = 0 if ok else 2
         except BaseException:
             code = 3
