@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import os
 import zlib
 
 import numpy as np
@@ -17,7 +18,8 @@ settings.register_profile(
     suppress_health_check=[HealthCheck.too_slow],
 )
 settings.register_profile("thorough", parent=settings.get_profile("rollscan"), max_examples=500)
-settings.load_profile("rollscan")
+# HYPOTHESIS_PROFILE=thorough for a longer local hunt
+settings.load_profile(os.environ.get("HYPOTHESIS_PROFILE", "rollscan"))
 
 
 @pytest.fixture

@@ -15,6 +15,8 @@ import rollscan
 import rollscan._core as core
 import scipy.signal
 from helpers import F32_RTOL, scale_atol, timemajor_buffer
+from hypothesis import given
+from hypothesis import strategies as st
 from numpy.testing import assert_allclose, assert_array_equal
 
 # (shape, time_axis): every layout of contract section 2, every time axis,
@@ -119,6 +121,37 @@ def test_gae_normalize_matches_reference(rng, shape, time_axis):
         _assert_close64(ret, want_ret)
         raw, _ = rollscan.gae(d["rewards"], d["values"], d["terminated"], gamma=0.97, lam=0.9, **kw)
         assert_allclose(ret, raw + d["values"], rtol=1e-12, atol=1e-12)
+
+
+@st.composite
+def timemajor_cases(draw):
+    t_len = draw(st.integers(1, 24))  # zero-size arrays: test_zero_length_buffers
+    streams = draw(st.lists(st.integers(1, 4), min_size=0, max_size=2))
+    ndim = 1 + len(streams)
+    time_axis = draw(st.integers(-ndim, ndim - 1))
+    moved = [t_len, *streams]
+    shape = tuple(np.moveaxis(np.empty(moved), 0, time_axis).shape)
+    kind = draw(st.sampled_from(KINDS))
+    gamma = draw(st.floats(0.0, 1.0))
+    lam = draw(st.floats(0.0, 1.0))
+    seed = draw(st.integers(0, 2**32 - 1))
+    return shape, time_axis, kind, gamma, lam, seed
+
+
+@given(timemajor_cases())
+def test_random_layouts_match_reference(case):
+    shape, time_axis, kind, gamma, lam, seed = case
+    d = timemajor_buffer(np.random.default_rng(seed), shape, time_axis, kind=kind)
+    kw = _returns_kwargs(d, time_axis)
+    got = rollscan.discounted_returns(d["rewards"], d["terminated"], gamma=gamma, **kw)
+    want = ref.discounted_returns(d["rewards"], d["terminated"], gamma=gamma, **kw)
+    _assert_close64(got, want)
+    adv, ret = rollscan.gae(d["rewards"], d["values"], d["terminated"], gamma=gamma, lam=lam, **kw)
+    want_adv, want_ret = ref.gae(
+        d["rewards"], d["values"], d["terminated"], gamma=gamma, lam=lam, **kw
+    )
+    _assert_close64(adv, want_adv)
+    _assert_close64(ret, want_ret)
 
 
 def test_terminated_none_means_no_episode_end(rng):
@@ -348,18 +381,19 @@ def test_python_lists_are_accepted():
 # --------------------------------------------------------------------------
 
 
-def _zero_size_calls(shape):
+def _zero_size_calls(shape, time_axis=0):
     r = np.zeros(shape)
-    stream = shape[1:]
+    stream = np.moveaxis(r, time_axis, 0).shape[1:]
+    kw = {"time_axis": time_axis}
     got = rollscan.discounted_returns(
-        r, np.zeros(shape, bool), gamma=0.9, bootstrap=np.ones(stream)
+        r, np.zeros(shape, bool), gamma=0.9, bootstrap=np.ones(stream), **kw
     )
     assert got.shape == shape
     assert got.dtype == np.float64
-    adv, ret = rollscan.gae(r, r, gamma=0.9, lam=0.9, bootstrap=np.ones(stream))
+    adv, ret = rollscan.gae(r, r, gamma=0.9, lam=0.9, bootstrap=np.ones(stream), **kw)
     assert adv.shape == ret.shape == shape
     r32 = r.astype(np.float32)
-    assert rollscan.discounted_returns(r32, gamma=0.9).dtype == np.float32
+    assert rollscan.discounted_returns(r32, gamma=0.9, **kw).dtype == np.float32
     assert rollscan.normalize(r).shape == shape
 
 
@@ -370,12 +404,16 @@ def test_zero_length_buffers(shape):
 
 @pytest.mark.xfail(
     strict=True,
-    reason="known discrepancy: a zero-size stream axis ([5, 0]) raises a Rust "
-    "PanicException (ndarray stride check) instead of returning an empty result",
+    reason="known discrepancy: a zero-size array whose empty axis is not the "
+    "leading one ([5, 0]; [3, 0] with time_axis=1) raises a Rust PanicException "
+    "(ndarray stride check) instead of returning an empty result",
 )
-@pytest.mark.parametrize("shape", [(5, 0), (4, 0, 3)])
-def test_zero_streams(shape):
-    _zero_size_calls(shape)
+@pytest.mark.parametrize(
+    ("shape", "time_axis"),
+    [((5, 0), 0), ((4, 0, 3), 0), ((3, 0), 1), ((3, 0), -1), ((2, 0, 2), 1), ((3, 2, 0), 2)],
+)
+def test_zero_size_non_leading_axis(shape, time_axis):
+    _zero_size_calls(shape, time_axis)
 
 
 def test_single_step(rng):
