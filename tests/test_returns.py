@@ -7,6 +7,7 @@ the definitions in the public contract; published checks name their source besid
 from __future__ import annotations
 
 import doctest
+import inspect
 
 import numpy as np
 import pytest
@@ -710,3 +711,55 @@ def test_gae_out_with_normalize(rng):
     assert res[1] is orr
     assert_allclose(oa, want_adv, rtol=1e-13, atol=1e-13)
     assert_array_equal(orr, want_ret)
+
+
+_REQ = inspect.Parameter.empty
+# The signatures the contract fixes (sections 2-3): names, order, positional or
+# keyword-only, defaults. Extra keyword-only arguments are allowed.
+CONTRACT_SIGNATURES = {
+    "discounted_returns": (
+        "rewards, terminated=None, *, gamma, truncated=None, next_values=None, "
+        "bootstrap=None, time_axis=0, check_finite=True, out=None"
+    ),
+    "gae": (
+        "rewards, values, terminated=None, *, gamma, lam, truncated=None, next_values=None, "
+        "bootstrap=None, normalize=False, eps=1e-8, time_axis=0, check_finite=True, out=None"
+    ),
+    "normalize": "x, *, eps=1e-8, ddof=0, mask=None, out=None",
+    "ragged.discounted_returns": (
+        "rewards, lengths, *, gamma, terminal=None, tail_values=None, check_finite=True, out=None"
+    ),
+    "ragged.gae": (
+        "rewards, values, lengths, *, gamma, lam, terminal=None, tail_values=None, "
+        "tail_advantages=None, normalize=False, eps=1e-8, check_finite=True, out=None"
+    ),
+    "ragged.episode_sums": "x, lengths, *, gamma=1.0",
+}
+
+
+@pytest.mark.parametrize("name", list(CONTRACT_SIGNATURES))
+def test_signatures_follow_the_contract(name):
+    ns: dict = {}
+    exec(f"def f({CONTRACT_SIGNATURES[name]}): pass", ns)  # a signature, not code under test
+    want = inspect.signature(ns["f"]).parameters
+    obj = rollscan
+    for part in name.split("."):
+        obj = getattr(obj, part)
+    got = inspect.signature(obj).parameters
+    for pname, p in want.items():
+        assert pname in got, f"{name}: missing argument {pname}"
+        assert got[pname].kind == p.kind, f"{name}: {pname} is {got[pname].kind}"
+        assert got[pname].default == p.default, f"{name}: {pname} default {got[pname].default}"
+    # contract positional arguments come first and in order
+    positional = [n for n, p in want.items() if p.kind is not p.KEYWORD_ONLY]
+    assert list(got)[: len(positional)] == positional
+    extra = [n for n in got if n not in want]
+    assert all(got[n].kind is inspect.Parameter.KEYWORD_ONLY for n in extra), extra
+    assert all(got[n].default is not _REQ for n in extra), extra
+
+
+def test_gamma_is_keyword_only():
+    with pytest.raises(TypeError):
+        rollscan.discounted_returns(np.ones(3), None, 0.9)
+    with pytest.raises(TypeError):
+        rollscan.ragged.discounted_returns(np.ones(3), [3], 0.9)
