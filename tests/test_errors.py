@@ -226,12 +226,6 @@ def test_check_finite_false_lets_nan_propagate():
     assert np.isnan(n).all()
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="known discrepancy: with check_finite=False a NaN crosses an episode end "
-    "(X_t = 0 at terminated_t is computed as gamma * 0 * NaN = NaN), and in the "
-    "ragged layout it leaks into the previous, independent piece",
-)
 @pytest.mark.parametrize("bad", [np.nan, np.inf])
 def test_check_finite_false_nan_stays_in_its_episode(bad):
     # X_t = 0 if terminated_t (contract section 2): the steps before an episode

@@ -403,12 +403,6 @@ def test_zero_length_buffers(shape):
     _zero_size_calls(shape)
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="known discrepancy: a zero-size array whose empty axis is not the "
-    "leading one ([5, 0]; [3, 0] with time_axis=1) raises a Rust PanicException "
-    "(ndarray stride check) instead of returning an empty result",
-)
 @pytest.mark.parametrize(
     ("shape", "time_axis"),
     [((5, 0), 0), ((4, 0, 3), 0), ((3, 0), 1), ((3, 0), -1), ((2, 0, 2), 1), ((3, 2, 0), 2)],

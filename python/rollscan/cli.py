@@ -3,10 +3,9 @@
 from __future__ import annotations
 
 import sys
-from typing import Optional
 
 
-def main(argv: Optional[list[str]] = None) -> int:
+def main(argv: list[str] | None = None) -> int:
     argv = list(sys.argv[1:] if argv is None else argv)
     if argv and argv[0] == "bench":
         from rollscan.bench import main as bench_main

@@ -57,8 +57,14 @@ mod tests {
         x[2 * CHUNK + 3] = f32::INFINITY;
         x[3 * CHUNK + 4] = f32::NAN;
         assert!(!all_finite(x.as_slice().unwrap()));
-        assert_eq!(first_non_finite_1d(&x.view(), Par::Rayon), Some(2 * CHUNK + 3));
-        assert_eq!(first_non_finite_1d(&x.slice(ndarray::s![..;-1]), Par::Seq), Some(0));
+        assert_eq!(
+            first_non_finite_1d(&x.view(), Par::Rayon),
+            Some(2 * CHUNK + 3)
+        );
+        assert_eq!(
+            first_non_finite_1d(&x.slice(ndarray::s![..;-1]), Par::Seq),
+            Some(0)
+        );
         let y = Array1::from(vec![1.0f64, -0.0, f64::MAX]);
         assert!(all_finite(y.as_slice().unwrap()));
     }

@@ -186,7 +186,10 @@ impl<F: Real> Inputs<'_, '_, '_, F> {
                 Kind::Returns { gamma } => {
                     match rs.as_slice() {
                         Some(sl) => xs.iter_mut().zip(sl).for_each(|(x, r)| *x = r.to_f64()),
-                        None => xs.iter_mut().zip(rs.iter()).for_each(|(x, r)| *x = r.to_f64()),
+                        None => xs
+                            .iter_mut()
+                            .zip(rs.iter())
+                            .for_each(|(x, r)| *x = r.to_f64()),
                     }
                     cs.fill(gamma);
                     if stop == end {
@@ -205,12 +208,20 @@ impl<F: Real> Inputs<'_, '_, '_, F> {
                     let vn = v.slice(s![s + 1..inner + 1]);
                     match (rs.as_slice(), vt.as_slice(), vn.as_slice()) {
                         (Some(r), Some(vt), Some(vn)) => {
-                            for ((((x, r), v), w), _) in xs.iter_mut().zip(r).zip(vt).zip(vn).zip(0..k_in) {
+                            for ((((x, r), v), w), _) in
+                                xs.iter_mut().zip(r).zip(vt).zip(vn).zip(0..k_in)
+                            {
                                 *x = r.to_f64() + gamma * w.to_f64() - v.to_f64();
                             }
                         }
                         _ => {
-                            for ((((x, r), v), w), _) in xs.iter_mut().zip(rs.iter()).zip(vt.iter()).zip(vn.iter()).zip(0..k_in) {
+                            for ((((x, r), v), w), _) in xs
+                                .iter_mut()
+                                .zip(rs.iter())
+                                .zip(vt.iter())
+                                .zip(vn.iter())
+                                .zip(0..k_in)
+                            {
                                 *x = r.to_f64() + gamma * w.to_f64() - v.to_f64();
                             }
                         }

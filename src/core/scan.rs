@@ -39,7 +39,7 @@ pub fn scan_rev_inplace(xy: &mut [f64], c: &[f64], carry: f64) -> f64 {
         for k in (0..m).rev() {
             for l in 0..LANES {
                 let i = l * m + k;
-                acc[l] = body[i] + cb[i] * acc[l];
+                acc[l] = body[i] + cont(cb[i], acc[l]);
                 prod[l] *= cb[i];
                 body[i] = acc[l];
                 p[i] = prod[l];
@@ -49,7 +49,9 @@ pub fn scan_rev_inplace(xy: &mut [f64], c: &[f64], carry: f64) -> f64 {
         for l in (0..LANES).rev() {
             let seg = &mut body[l * m..(l + 1) * m];
             let ps = &p[l * m..(l + 1) * m];
-            seg.iter_mut().zip(ps).for_each(|(y, &q)| *y += q * cin);
+            seg.iter_mut()
+                .zip(ps)
+                .for_each(|(y, &q)| *y += cont(q, cin));
             cin = seg[0];
         }
         if r0 == 0 {
@@ -63,10 +65,22 @@ pub fn scan_rev_inplace(xy: &mut [f64], c: &[f64], carry: f64) -> f64 {
 fn scan_serial(xy: &mut [f64], c: &[f64], carry: f64) -> f64 {
     let mut acc = carry;
     for (y, &k) in xy.iter_mut().zip(c.iter()).rev() {
-        acc = *y + k * acc;
+        acc = *y + cont(k, acc);
         *y = acc;
     }
     acc
+}
+
+/// `c * y`, but exactly 0 when `c == 0`: an episode end stops the chain even
+/// if what follows is NaN or inf (with `check_finite=False`), so a bad value
+/// never leaks into an earlier, independent episode.
+#[inline(always)]
+pub fn cont(c: f64, y: f64) -> f64 {
+    if c == 0.0 {
+        0.0
+    } else {
+        c * y
+    }
 }
 
 /// The affine map a segment applies to the carry entering it from the right:
@@ -84,7 +98,7 @@ impl Carry {
     /// The first output of the segment when `carry` enters at its right end.
     #[inline]
     pub fn apply(self, carry: f64) -> f64 {
-        self.head + self.factor * carry
+        self.head + cont(self.factor, carry)
     }
 }
 
@@ -108,16 +122,36 @@ mod tests {
     #[test]
     fn lanes_agree_with_one_chain() {
         for &n in &[255usize, 256, 257, 1000, 4099, 20000] {
-            let x: Vec<f64> = (0..n).map(|i| ((i * 7919) % 113) as f64 * 0.01 - 0.5).collect();
-            let c: Vec<f64> = (0..n).map(|i| if i % 97 == 0 { 0.0 } else { 0.99 }).collect();
+            let x: Vec<f64> = (0..n)
+                .map(|i| ((i * 7919) % 113) as f64 * 0.01 - 0.5)
+                .collect();
+            let c: Vec<f64> = (0..n)
+                .map(|i| if i % 97 == 0 { 0.0 } else { 0.99 })
+                .collect();
             let mut a = x.clone();
             let mut b = x.clone();
             let ya = scan_rev_inplace(&mut a, &c, 2.5);
             let yb = scan_serial(&mut b, &c, 2.5);
             assert!((ya - yb).abs() < 1e-12);
             for i in 0..n {
-                assert!((a[i] - b[i]).abs() <= 1e-12 * b[i].abs().max(1.0), "n={n} i={i}");
+                assert!(
+                    (a[i] - b[i]).abs() <= 1e-12 * b[i].abs().max(1.0),
+                    "n={n} i={i}"
+                );
             }
+        }
+    }
+
+    #[test]
+    fn an_end_stops_nan() {
+        for n in [5usize, 3000] {
+            let mut x = vec![1.0; n];
+            x[n - 1] = f64::NAN;
+            let mut c = vec![0.5; n];
+            c[n - 2] = 0.0;
+            scan_rev_inplace(&mut x, &c, f64::INFINITY);
+            assert!(x[n - 1].is_nan());
+            assert!(x[..n - 1].iter().all(|v| v.is_finite()));
         }
     }
 

@@ -283,7 +283,11 @@ fn run_block<F: Real>(
     let cols = s![.., m0..m0 + w];
     let r = steps.rewards.slice(cols);
     let use_v = matches!(kind, Kind::Gae { .. });
-    let v = steps.values.as_ref().filter(|_| use_v).map(|a| a.slice(cols));
+    let v = steps
+        .values
+        .as_ref()
+        .filter(|_| use_v)
+        .map(|a| a.slice(cols));
     let nv = steps.next_values.as_ref().map(|a| a.slice(cols));
     let term = steps.terminated.as_ref().map(|a| a.slice(cols));
     let trunc = steps.truncated.as_ref().map(|a| a.slice(cols));
@@ -326,8 +330,18 @@ fn run_block<F: Real>(
                 Kind::Returns { gamma } => {
                     let last = t0 + i + 1 == t_len;
                     // The value a cut step bootstraps from.
-                    let fix: &[f64] = if !nvs.is_empty() { &nvs[row.clone()] } else { &boot };
-                    for ((((y, &te), &tr), &fv), cy) in x.iter_mut().zip(te).zip(tr).zip(fix).zip(carry_y.iter_mut()) {
+                    let fix: &[f64] = if !nvs.is_empty() {
+                        &nvs[row.clone()]
+                    } else {
+                        &boot
+                    };
+                    for ((((y, &te), &tr), &fv), cy) in x
+                        .iter_mut()
+                        .zip(te)
+                        .zip(tr)
+                        .zip(fix)
+                        .zip(carry_y.iter_mut())
+                    {
                         let xv = if te {
                             0.0
                         } else if tr || last {
@@ -350,8 +364,13 @@ fn run_block<F: Real>(
                     } else {
                         &carry_v
                     };
-                    for (((((y, &te), &tr), &v), &vn), cy) in
-                        x.iter_mut().zip(te).zip(tr).zip(vt).zip(vnext).zip(carry_y.iter_mut())
+                    for (((((y, &te), &tr), &v), &vn), cy) in x
+                        .iter_mut()
+                        .zip(te)
+                        .zip(tr)
+                        .zip(vt)
+                        .zip(vnext)
+                        .zip(carry_y.iter_mut())
                     {
                         let vp = if te { 0.0 } else { vn };
                         let d = *y + gamma * vp - v;
@@ -383,7 +402,10 @@ fn gather<F: Real>(src: &ArrayView2<'_, F>, dst: &mut [f64]) {
     for (row, d) in src.rows().into_iter().zip(dst.chunks_mut(w)) {
         match row.as_slice() {
             Some(sl) => d.iter_mut().zip(sl).for_each(|(d, s)| *d = s.to_f64()),
-            None => d.iter_mut().zip(row.iter()).for_each(|(d, s)| *d = s.to_f64()),
+            None => d
+                .iter_mut()
+                .zip(row.iter())
+                .for_each(|(d, s)| *d = s.to_f64()),
         }
     }
 }
@@ -411,7 +433,11 @@ fn scatter<F: Real>(y: &[f64], add: Option<&[f64]>, dst: &mut ArrayViewMut2<'_, 
     let w = dst.ncols().max(1);
     let store = |d: &mut [F], y: &[f64], a: Option<&[f64]>| match a {
         None => d.iter_mut().zip(y).for_each(|(o, &y)| *o = F::from_f64(y)),
-        Some(a) => d.iter_mut().zip(y).zip(a).for_each(|((o, &y), &a)| *o = F::from_f64(y + a)),
+        Some(a) => d
+            .iter_mut()
+            .zip(y)
+            .zip(a)
+            .for_each(|((o, &y), &a)| *o = F::from_f64(y + a)),
     };
     if let Some(d) = dst.as_slice_mut() {
         store(d, y, add);
@@ -423,8 +449,13 @@ fn scatter<F: Real>(y: &[f64], add: Option<&[f64]>, dst: &mut ArrayViewMut2<'_, 
         match row.as_slice_mut() {
             Some(d) => store(d, ys, a),
             None => match a {
-                None => Zip::from(&mut row).and(ys).for_each(|o, &y| *o = F::from_f64(y)),
-                Some(a) => Zip::from(&mut row).and(ys).and(a).for_each(|o, &y, &a| *o = F::from_f64(y + a)),
+                None => Zip::from(&mut row)
+                    .and(ys)
+                    .for_each(|o, &y| *o = F::from_f64(y)),
+                Some(a) => Zip::from(&mut row)
+                    .and(ys)
+                    .and(a)
+                    .for_each(|o, &y, &a| *o = F::from_f64(y + a)),
             },
         }
     }

@@ -85,10 +85,14 @@ def cases(quick: bool) -> list[Case]:
         term = rng.random((t_len, n)) < 0.01
         boot = rng.standard_normal(n, dtype=np.float32)
         oa, orr = np.empty_like(r), np.empty_like(r)
-        refs: dict[str, Callable] = {"numpy": lambda r=r, v=v, te=term, b=boot: numpy_gae(r, v, te, b, gamma, lam)}
+        refs: dict[str, Callable] = {
+            "numpy": lambda r=r, v=v, te=term, b=boot: numpy_gae(r, v, te, b, gamma, lam)
+        }
         if "gae" in nb:
             buf = np.empty_like(r)
-            refs["numba"] = lambda r=r, v=v, te=term, b=boot, buf=buf: nb["gae"](r, v, te, b, gamma, lam, buf)
+            refs["numba"] = lambda r=r, v=v, te=term, b=boot, buf=buf: nb["gae"](
+                r, v, te, b, gamma, lam, buf
+            )
         target = {
             (2048, 64): ">= 50x numpy, >= 2x faster than numba",
             (128, 8): "<= 5 us per call",
@@ -97,7 +101,9 @@ def cases(quick: bool) -> list[Case]:
             Case(
                 group="gae f32 time-major",
                 name=f"({t_len}, {n})",
-                run=lambda r=r, v=v, te=term, b=boot: rollscan.gae(r, v, te, gamma=gamma, lam=lam, bootstrap=b),
+                run=lambda r=r, v=v, te=term, b=boot: rollscan.gae(
+                    r, v, te, gamma=gamma, lam=lam, bootstrap=b
+                ),
                 run_out=lambda r=r, v=v, te=term, b=boot, oa=oa, orr=orr: rollscan.gae(
                     r, v, te, gamma=gamma, lam=lam, bootstrap=b, out=(oa, orr)
                 ),
@@ -126,8 +132,12 @@ def cases(quick: bool) -> list[Case]:
             Case(
                 group="ragged returns f32",
                 name=f"{s:.0e} steps, len 1..1000",
-                run=lambda r=r, ln=lengths_a: rollscan.ragged.discounted_returns(r, ln, gamma=gamma),
-                run_out=lambda r=r, ln=lengths_a, o=o: rollscan.ragged.discounted_returns(r, ln, gamma=gamma, out=o),
+                run=lambda r=r, ln=lengths_a: rollscan.ragged.discounted_returns(
+                    r, ln, gamma=gamma
+                ),
+                run_out=lambda r=r, ln=lengths_a, o=o: rollscan.ragged.discounted_returns(
+                    r, ln, gamma=gamma, out=o
+                ),
                 refs=refs,
                 bytes_moved=s * 8,
                 fresh_out_bytes=s * 4,

@@ -21,7 +21,7 @@ import statistics
 import sys
 import time
 from dataclasses import dataclass, field
-from typing import Callable, Optional
+from typing import Callable
 
 import numpy as np
 
@@ -50,7 +50,7 @@ class Case:
     refs: dict[str, Callable[[], object]] = field(default_factory=dict)
     bytes_moved: int = 0
     fresh_out_bytes: int = 0
-    run_out: Optional[Callable[[], object]] = None
+    run_out: Callable[[], object] | None = None
     target: str = ""
 
 
@@ -106,7 +106,7 @@ def first_touch_rate(nbytes: int, budget: float) -> float:
     return n * 4 / t
 
 
-def _fmt_t(s: Optional[float]) -> str:
+def _fmt_t(s: float | None) -> str:
     if s is None:
         return "-"
     if s < 1e-3:
@@ -116,7 +116,7 @@ def _fmt_t(s: Optional[float]) -> str:
     return f"{s:.2f} s"
 
 
-def collect(quick: bool, only: Optional[str]) -> list[Case]:
+def collect(quick: bool, only: str | None) -> list[Case]:
     cases: list[Case] = []
     for mod in MODULES:
         if only and only != mod:
@@ -141,7 +141,13 @@ def run_cases(cases: list[Case], quick: bool) -> dict:
         small = c.bytes_moved and c.bytes_moved < (1 << 20)
         timer = time_small if small else time_call
         t = timer(c.run, budget)
-        row: dict = {"group": c.group, "case": c.name, "rollscan_s": t, "refs": {}, "target": c.target}
+        row: dict = {
+            "group": c.group,
+            "case": c.name,
+            "rollscan_s": t,
+            "refs": {},
+            "target": c.target,
+        }
         for name, ref in c.refs.items():
             rt = timer(ref, budget)
             row["refs"][name] = {"s": rt, "ratio": rt / t}
@@ -189,7 +195,7 @@ def _fmt_row(r: dict) -> str:
     return " ".join(parts)
 
 
-def main(argv: Optional[list[str]] = None) -> int:
+def main(argv: list[str] | None = None) -> int:
     """Entry point of ``rollscan bench``; returns the exit status."""
     p = argparse.ArgumentParser(
         prog="rollscan bench",
