@@ -1,14 +1,21 @@
 """rollscan: fast, exact post-processing of reinforcement-learning rollouts.
 
-Every kernel runs in Rust with the GIL released; see ``API.md`` for the
-contract (shapes, dtypes, ``out=``, errors, threads).
+Rust kernels (parallel, GIL released, zero-copy on NumPy arrays) for the
+steps between collecting rollouts and taking a policy-gradient step:
+discounted returns, GAE advantages with correct bootstraps at time limits,
+normalisation, ragged episodes (``rollscan.ragged``), action-head
+log-probabilities and entropies, off-policy corrections, running statistics.
 """
 
 from __future__ import annotations
 
-from rollscan._core import (
+import os as _os
+
+from . import _core, ragged
+from ._core import (
     InputError,
     ShapeError,
+    __version__,
     categorical_entropy,
     categorical_kl,
     categorical_log_prob,
@@ -16,6 +23,8 @@ from rollscan._core import (
     categorical_mode,
     categorical_sample,
     categorical_score,
+    discounted_returns,
+    gae,
     gaussian_entropy,
     gaussian_kl,
     gaussian_log_prob,
@@ -23,14 +32,21 @@ from rollscan._core import (
     gaussian_sample,
     gaussian_score,
     get_num_threads,
+    normalize,
     set_num_threads,
     squashed_gaussian_log_prob,
     squashed_gaussian_sample,
 )
 
+# The worker threads of a parent process do not exist in a forked child:
+# start a fresh pool there on first use.
+if hasattr(_os, "register_at_fork"):
+    _os.register_at_fork(after_in_child=_core._after_fork_in_child)
+
 __all__ = [
     "InputError",
     "ShapeError",
+    "__version__",
     "categorical_entropy",
     "categorical_kl",
     "categorical_log_prob",
@@ -38,6 +54,8 @@ __all__ = [
     "categorical_mode",
     "categorical_sample",
     "categorical_score",
+    "discounted_returns",
+    "gae",
     "gaussian_entropy",
     "gaussian_kl",
     "gaussian_log_prob",
@@ -45,6 +63,8 @@ __all__ = [
     "gaussian_sample",
     "gaussian_score",
     "get_num_threads",
+    "normalize",
+    "ragged",
     "set_num_threads",
     "squashed_gaussian_log_prob",
     "squashed_gaussian_sample",

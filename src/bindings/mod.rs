@@ -1,18 +1,24 @@
-//! The PyO3 layer: extract and validate Python arguments, release the GIL,
-//! run the core on the crate's Rayon pool, map errors to Python exceptions.
+//! The PyO3 layer: extract and validate arguments, release the GIL, run the
+//! core on the crate's Rayon pool, map errors. No numerics live here.
 
-mod arrays;
+mod convert;
 mod errors;
 mod heads;
-mod pool;
+mod layout;
+mod ragged;
+mod returns;
+mod threads;
 
 use pyo3::prelude::*;
 
-/// The compiled module `rollscan._core`.
+/// The compiled half of ``rollscan``; import ``rollscan`` instead.
 #[pymodule]
 fn _core(m: &Bound<'_, PyModule>) -> PyResult<()> {
+    m.add("__version__", env!("CARGO_PKG_VERSION"))?;
     errors::register(m)?;
-    pool::register(m)?;
+    threads::register(m)?;
+    returns::register(m)?;
+    ragged::register(m)?;
     heads::register(m)?;
     Ok(())
 }

@@ -21,7 +21,7 @@ use super::math::{exp_inplace, ln_inplace, simd};
 use super::rng::Stream;
 use super::{
     any_nan, batch_shape, broadcast, first_error, gather_t, row_starts, same_shape, scatter_col,
-    scatter_t, split_last, to2_mut, Actions, At, Layout,
+    scatter_t, split_last, to2_mut, At, Layout,
 };
 use crate::core::error::{CoreError, CoreResult};
 use crate::core::float::Real;
@@ -94,7 +94,7 @@ impl<F> Default for CatOut<'_, F> {
 /// The row pass behind every categorical head except the KL.
 pub fn categorical<F: Real>(
     lg: &Logits<'_, F>,
-    actions: Option<Actions<'_>>,
+    actions: Option<ArrayViewD<'_, i64>>,
     pick: Pick,
     out: CatOut<'_, F>,
     par: Par,
@@ -161,10 +161,7 @@ pub fn categorical<F: Real>(
     let n = xb.len();
     let starts = row_starts(xb.iter().map(|b| b.shape()[0]));
     let mb = layout.split_opt(mask, n);
-    let ab: Vec<Option<Actions<'_>>> = match actions {
-        Some(a) => a.split(&layout).into_iter().map(Some).collect(),
-        None => (0..n).map(|_| None).collect(),
-    };
+    let ab = layout.split_opt(actions, n);
     let lpb = layout.split_opt(out.log_prob.map(|o| o.view), n);
     let enb = layout.split_opt(out.entropy.map(|o| o.view), n);
     let scb = layout.split_opt(out.score.map(|o| o.view), n);
@@ -190,19 +187,20 @@ pub fn categorical<F: Real>(
         })
         .collect();
     let check = lg.check_finite;
-    let results = layout
-        .par(par)
-        .map(items, |b| simd(#[inline(always)] || b.run(pick, check)));
+    let results = layout.par(par).map(items, |b| {
+        simd(
+            #[inline(always)]
+            || b.run(pick, check),
+        )
+    });
     first_error(results)
 }
 
-// `Actions` is invariant in its lifetime (ndarray's element-type projection),
-// so it keeps a lifetime of its own.
-struct Block<'b, 'c, F> {
+struct Block<'b, F> {
     row0: usize,
     x: ArrayView2<'b, F>,
     mask: Option<ArrayView2<'b, bool>>,
-    actions: Option<Actions<'c>>,
+    actions: Option<ArrayViewD<'b, i64>>,
     log_prob: Option<ArrayViewMutD<'b, F>>,
     entropy: Option<ArrayViewMutD<'b, F>>,
     score: Option<ArrayViewMutD<'b, F>>,
@@ -239,7 +237,9 @@ fn gather<F: Real>(
         match &mt {
             None => {
                 if check {
-                    chk.iter_mut().zip(zc.iter()).for_each(|(c, &v)| *c += v * 0.0);
+                    chk.iter_mut()
+                        .zip(zc.iter())
+                        .for_each(|(c, &v)| *c += v * 0.0);
                 }
             }
             Some(mt) => {
@@ -310,15 +310,15 @@ impl Gathered {
     }
 }
 
-impl<F: Real> Block<'_, '_, F> {
+impl<F: Real> Block<'_, F> {
     #[inline(always)]
     fn run(self, pick: Pick, check: bool) -> CoreResult<()> {
         let mut g = gather(&self.x, self.mask.as_ref(), check);
         let (n, k) = (g.n, g.k);
-        let mut act = vec![0i64; if self.actions.is_some() { n } else { 0 }];
-        if let Some(a) = &self.actions {
-            a.gather(&mut act);
-        }
+        let act: Vec<i64> = match &self.actions {
+            Some(a) => a.iter().copied().collect(),
+            None => Vec::new(),
+        };
         let kk = k as i64;
         let bad_actions = act.iter().any(|&a| a < 0 || a >= kk)
             || self
@@ -501,54 +501,60 @@ pub fn categorical_kl<F: Real>(
         })
         .collect();
     let check = p.check_finite;
-    let results = layout.par(par).map(items, |(row0, xp, xq, mk, o)| simd(#[inline(always)] || {
-        let mut gp = gather(&xp, mk.as_ref(), check);
-        let mut gq = gather(&xq, mk.as_ref(), check);
-        let (n, k) = (gp.n, gp.k);
-        if gp.suspect(mk.is_some()) || gq.suspect(false) {
-            for r in 0..n {
-                let row = row0 + r;
-                if let Some(e) = gp.row_error("logits_p", &xp, mk.as_ref(), r, row) {
-                    return Err(e);
+    let results = layout.par(par).map(items, |(row0, xp, xq, mk, o)| {
+        simd(
+            #[inline(always)]
+            || {
+                let mut gp = gather(&xp, mk.as_ref(), check);
+                let mut gq = gather(&xq, mk.as_ref(), check);
+                let (n, k) = (gp.n, gp.k);
+                if gp.suspect(mk.is_some()) || gq.suspect(false) {
+                    for r in 0..n {
+                        let row = row0 + r;
+                        if let Some(e) = gp.row_error("logits_p", &xp, mk.as_ref(), r, row) {
+                            return Err(e);
+                        }
+                        if let Some(e) = gq.row_error("logits_q", &xq, mk.as_ref(), r, row) {
+                            return Err(e);
+                        }
+                    }
                 }
-                if let Some(e) = gq.row_error("logits_q", &xq, mk.as_ref(), r, row) {
-                    return Err(e);
+                let ep = gp.shift_exp();
+                let eq = gq.shift_exp();
+                let (mut sp, mut sq, mut d) = (vec![0.0; n], vec![0.0; n], vec![0.0; n]);
+                for j in 0..k {
+                    let c = j * n..(j + 1) * n;
+                    let (zp, zq, ep, eq) =
+                        (&gp.z[c.clone()], &gq.z[c.clone()], &ep[c.clone()], &eq[c]);
+                    for r in 0..n {
+                        sp[r] += ep[r];
+                        sq[r] += eq[r];
+                        d[r] += if ep[r] > 0.0 {
+                            ep[r] * (zp[r] - zq[r])
+                        } else {
+                            0.0
+                        };
+                    }
                 }
-            }
-        }
-        let ep = gp.shift_exp();
-        let eq = gq.shift_exp();
-        let (mut sp, mut sq, mut d) = (vec![0.0; n], vec![0.0; n], vec![0.0; n]);
-        for j in 0..k {
-            let c = j * n..(j + 1) * n;
-            let (zp, zq, ep, eq) = (&gp.z[c.clone()], &gq.z[c.clone()], &ep[c.clone()], &eq[c]);
-            for r in 0..n {
-                sp[r] += ep[r];
-                sq[r] += eq[r];
-                d[r] += if ep[r] > 0.0 {
-                    ep[r] * (zp[r] - zq[r])
-                } else {
-                    0.0
-                };
-            }
-        }
-        ln_inplace(&mut sq);
-        let mut lsp = sp.clone();
-        ln_inplace(&mut lsp);
-        let kl: Vec<f64> = (0..n)
-            .map(|r| {
-                let v = d[r] / sp[r] + sq[r] - lsp[r];
-                // Rounding must not report a negative divergence.
-                if v < 0.0 {
-                    0.0
-                } else {
-                    v
-                }
-            })
-            .collect();
-        write_rows(&kl, o);
-        Ok(())
-    }));
+                ln_inplace(&mut sq);
+                let mut lsp = sp.clone();
+                ln_inplace(&mut lsp);
+                let kl: Vec<f64> = (0..n)
+                    .map(|r| {
+                        let v = d[r] / sp[r] + sq[r] - lsp[r];
+                        // Rounding must not report a negative divergence.
+                        if v < 0.0 {
+                            0.0
+                        } else {
+                            v
+                        }
+                    })
+                    .collect();
+                write_rows(&kl, o);
+                Ok(())
+            },
+        )
+    });
     first_error(results)
 }
 
@@ -603,7 +609,7 @@ mod tests {
                 mask: mask.map(|m| m.view()),
                 check_finite: true,
             },
-            Some(Actions::I64(a.view())),
+            Some(a.view()),
             Pick::Nothing,
             CatOut {
                 log_prob: Some(Out::new("out[0]", lp.view_mut())),
@@ -685,7 +691,7 @@ mod tests {
         };
         let e = categorical(
             &lg,
-            Some(Actions::I64(a.view())),
+            Some(a.view()),
             Pick::Nothing,
             CatOut {
                 log_prob: Some(Out::new("out", lp.view_mut())),
@@ -706,7 +712,7 @@ mod tests {
         let a = array![0i64, 0, 0].into_dyn();
         let e = categorical(
             &lg,
-            Some(Actions::I64(a.view())),
+            Some(a.view()),
             Pick::Nothing,
             CatOut {
                 log_prob: Some(Out::new("out", lp.view_mut())),
@@ -728,10 +734,10 @@ mod tests {
             mask: None,
             check_finite: true,
         };
-        let a = array![0u8, 5, 0].into_dyn();
+        let a = array![0i64, 5, 0].into_dyn();
         let e = categorical(
             &lg,
-            Some(Actions::U8(a.view())),
+            Some(a.view()),
             Pick::Nothing,
             CatOut {
                 log_prob: Some(Out::new("out", lp.view_mut())),
@@ -744,7 +750,7 @@ mod tests {
         let bad = array![0i64, 1].into_dyn();
         let e = categorical(
             &lg,
-            Some(Actions::I64(bad.view())),
+            Some(bad.view()),
             Pick::Nothing,
             CatOut {
                 log_prob: Some(Out::new("out", lp.view_mut())),

@@ -205,9 +205,9 @@ multiversion! {
 /// `x[i] = ln(x[i])` in place, exact IEEE semantics for 0, negatives, inf,
 /// NaN and subnormals.
 pub fn ln_inplace(x: &mut [f64]) {
-    let special = x
-        .iter()
-        .fold(false, |a, &v| a | !(f64::MIN_POSITIVE..f64::INFINITY).contains(&v));
+    let special = x.iter().fold(false, |a, &v| {
+        a | !(f64::MIN_POSITIVE..f64::INFINITY).contains(&v)
+    });
     if special {
         // Rare: take the standard library for everything (same results where
         // both are defined, to the last ulp or so).
@@ -351,7 +351,9 @@ mod tests {
 
     #[test]
     fn squash_helpers_are_stable() {
-        for &u in &[-40.0f64, -25.0, -3.0, -1e-9, 0.0, 1e-9, 0.7, 25.0, 40.0, 400.0] {
+        for &u in &[
+            -40.0f64, -25.0, -3.0, -1e-9, 0.0, 1e-9, 0.7, 25.0, 40.0, 400.0,
+        ] {
             let direct = (1.0 - u.tanh().powi(2)).ln();
             let s = log1m_tanh2(u);
             assert!(s.is_finite());

@@ -66,6 +66,26 @@ impl Bounds {
     }
 }
 
+/// The squashed row pass with any outputs (`log_prob`; or `sample` with
+/// `pre_squash` and a seed).
+pub fn squashed<F: Real>(
+    nrm: &Normal<'_, F>,
+    actions: Option<ArrayViewD<'_, F>>,
+    pre_squash: Option<ArrayViewD<'_, F>>,
+    seed: Option<u64>,
+    bounds: &Bounds,
+    out: GaussOut<'_, F>,
+    par: Par,
+) -> CoreResult<()> {
+    if out.entropy.is_some() || out.d_mean.is_some() || out.d_log_std.is_some() {
+        return Err(CoreError::input(
+            "out",
+            "the squashed head has a log-density and samples only",
+        ));
+    }
+    run(nrm, actions, pre_squash, seed, Some(bounds), out, par)
+}
+
 /// `log p(actions)` of the squashed Gaussian, `[batch...]`.
 pub fn squashed_log_prob<F: Real>(
     nrm: &Normal<'_, F>,
