@@ -17,11 +17,11 @@
 //! size (`+-1e30`) give finite results: only differences to the row maximum
 //! are exponentiated.
 
-use super::math::{exp_inplace, ln_inplace, simd};
+use super::math::{exp_to, ln_inplace, simd};
 use super::rng::Stream;
 use super::{
     any_nan, batch_shape, broadcast, first_error, gather_t, row_starts, same_shape, scatter_col,
-    scatter_t, split_last, to2_mut, At, Layout,
+    scatter_t, split_last, to2_mut, At, Buf, Layout,
 };
 use crate::core::error::{CoreError, CoreResult};
 use crate::core::float::Real;
@@ -211,9 +211,9 @@ struct Block<'b, F> {
 struct Gathered {
     n: usize,
     k: usize,
-    z: Vec<f64>,
-    m: Vec<f64>,
-    chk: Vec<f64>,
+    z: Buf,
+    m: Buf,
+    chk: Buf,
 }
 
 #[inline(always)]
@@ -223,13 +223,13 @@ fn gather<F: Real>(
     check: bool,
 ) -> Gathered {
     let (n, k) = x.dim();
-    let mut z = vec![0.0; n * k];
+    let mut z = Buf::stale(n * k);
     gather_t(x, &mut z, |v| v.to_f64());
-    let mut m = vec![f64::NEG_INFINITY; n];
-    let mut chk = vec![0.0; if check { n } else { 0 }];
+    let mut m = Buf::filled(n, f64::NEG_INFINITY);
+    let mut chk = Buf::filled(if check { n } else { 0 }, 0.0);
     let mt = mask.map(|mk| {
-        let mut mt = vec![false; n * k];
-        gather_t(mk, &mut mt, |v| v);
+        let mut mt = Buf::stale(n * k);
+        gather_t(mk, &mut mt, |v| if v { 1.0 } else { 0.0 });
         mt
     });
     for j in 0..k {
@@ -248,11 +248,11 @@ fn gather<F: Real>(
                     chk.iter_mut()
                         .zip(zc.iter())
                         .zip(mc)
-                        .for_each(|((c, &v), &a)| *c += if a { v * 0.0 } else { 0.0 });
+                        .for_each(|((c, &v), &a)| *c += if a != 0.0 { v * 0.0 } else { 0.0 });
                 }
                 zc.iter_mut()
                     .zip(mc)
-                    .for_each(|(v, &a)| *v = if a { *v } else { f64::NEG_INFINITY });
+                    .for_each(|(v, &a)| *v = if a != 0.0 { *v } else { f64::NEG_INFINITY });
             }
         }
         m.iter_mut()
@@ -296,16 +296,16 @@ impl Gathered {
 
     /// `z -= max` per row; returns `e = exp(z)`.
     #[inline(always)]
-    fn shift_exp(&mut self) -> Vec<f64> {
+    fn shift_exp(&mut self) -> Buf {
         let n = self.n;
         for j in 0..self.k {
             self.z[j * n..(j + 1) * n]
                 .iter_mut()
-                .zip(&self.m)
+                .zip(self.m.iter())
                 .for_each(|(z, &m)| *z -= m);
         }
-        let mut e = self.z.clone();
-        exp_inplace(&mut e);
+        let mut e = Buf::stale(self.z.len());
+        exp_to(&self.z, &mut e);
         e
     }
 }
@@ -316,7 +316,10 @@ impl<F: Real> Block<'_, F> {
         let mut g = gather(&self.x, self.mask.as_ref(), check);
         let (n, k) = (g.n, g.k);
         let act: Vec<i64> = match &self.actions {
-            Some(a) => a.iter().copied().collect(),
+            Some(a) => match a.as_slice() {
+                Some(s) => s.to_vec(),
+                None => a.iter().copied().collect(),
+            },
             None => Vec::new(),
         };
         let kk = k as i64;
@@ -371,8 +374,8 @@ impl<F: Real> Block<'_, F> {
 
         let e = g.shift_exp();
         let z = &g.z;
-        let mut s = vec![0.0; n];
-        let mut t = vec![0.0; n];
+        let mut s = Buf::filled(n, 0.0);
+        let mut t = Buf::filled(n, 0.0);
         for j in 0..k {
             let (zc, ec) = (&z[j * n..(j + 1) * n], &e[j * n..(j + 1) * n]);
             s.iter_mut()
@@ -383,7 +386,8 @@ impl<F: Real> Block<'_, F> {
                     *t += if e > 0.0 { e * z } else { 0.0 };
                 });
         }
-        let mut lns = s.clone();
+        let mut lns = Buf::stale(n);
+        lns.copy_from_slice(&s);
         ln_inplace(&mut lns);
 
         if let Some(o) = self.log_prob {
@@ -521,7 +525,11 @@ pub fn categorical_kl<F: Real>(
                 }
                 let ep = gp.shift_exp();
                 let eq = gq.shift_exp();
-                let (mut sp, mut sq, mut d) = (vec![0.0; n], vec![0.0; n], vec![0.0; n]);
+                let (mut sp, mut sq, mut d) = (
+                    Buf::filled(n, 0.0),
+                    Buf::filled(n, 0.0),
+                    Buf::filled(n, 0.0),
+                );
                 for j in 0..k {
                     let c = j * n..(j + 1) * n;
                     let (zp, zq, ep, eq) =
@@ -537,7 +545,8 @@ pub fn categorical_kl<F: Real>(
                     }
                 }
                 ln_inplace(&mut sq);
-                let mut lsp = sp.clone();
+                let mut lsp = Buf::stale(n);
+                lsp.copy_from_slice(&sp);
                 ln_inplace(&mut lsp);
                 let kl: Vec<f64> = (0..n)
                     .map(|r| {

@@ -19,12 +19,12 @@
 //! log-Jacobian of the squash.
 
 use super::categorical::Out;
-use super::math::{exp_inplace, half_tanh_p1, log1m_tanh2, HALF_LN_2PI};
+use super::math::{exp_inplace, exp_to, half_tanh_p1, log1m_tanh2, simd, HALF_LN_2PI};
 use super::rng::Stream;
 use super::squashed::Bounds;
 use super::{
-    any_nan, batch_shape, first_error, gather_col, row_starts, scatter_col, split_last, to2,
-    to2_mut,
+    any_nan, batch_shape, first_error, gather_col, gather_t, row_starts, scatter_col, scatter_t,
+    split_last, to2, to2_mut, Buf,
 };
 use super::{At, Layout};
 use crate::core::error::{CoreError, CoreResult};
@@ -299,154 +299,82 @@ pub(crate) fn run<F: Real>(
         check: nrm.check_finite,
         entropy_const,
     };
-    let results = layout.par(par).map(items, |b| ctx.block(b));
+    let results = layout.par(par).map(items, |b| {
+        simd(
+            #[inline(always)]
+            || ctx.block(b),
+        )
+    });
     first_error(results)
 }
 
 impl Ctx<'_> {
+    #[inline(always)]
     fn block<F: Real>(&self, b: GBlock<'_, F>) -> CoreResult<()> {
         let (n, d) = b.mean.dim();
+        let nd = n * d;
         let check = self.check;
         let squash = self.bounds;
-        let invert = squash.is_some() && !self.pre_given;
-        let mut lp = vec![0.0; n];
-        let mut ent = vec![0.0; n];
-        let mut chk = vec![0.0; n];
-        let mut oor = vec![false; n];
-        let (mut mu, mut ls, mut inv) = (vec![0.0; n], vec![0.0; n], vec![0.0; n]);
-        let (mut a, mut col, mut col2) = (vec![0.0; n], vec![0.0; n], vec![0.0; n]);
-        let mut spare = vec![0.0; n];
-        let streams: Vec<Stream> = match self.seed {
-            Some(seed) => (0..n)
-                .map(|r| Stream::new(seed, (b.row0 + r) as u64))
-                .collect(),
-            None => Vec::new(),
-        };
-        let want_ent_rows = b.entropy.is_some() && self.shared.is_none();
-        let want_lp = b.log_prob.is_some();
-        let (mut dm, mut dl) = (
-            b.d_mean.map(|v| to2_mut(v)),
-            b.d_log_std.map(|v| to2_mut(v)),
-        );
-        let (mut smp, mut pre) = (b.sample.map(|v| to2_mut(v)), b.pre.map(|v| to2_mut(v)));
-        for j in 0..d {
-            gather_col(b.mean.column(j), &mut mu);
-            match (&b.ls, &self.shared) {
-                (Some(v), _) => {
-                    gather_col(v.column(j), &mut ls);
-                    inv.iter_mut().zip(&ls).for_each(|(i, &s)| *i = -s);
-                    exp_inplace(&mut inv);
-                    if check {
-                        chk.iter_mut().zip(&ls).for_each(|(c, &s)| *c += s * 0.0);
-                    }
-                }
-                (None, Some((sv, si))) => {
-                    ls.fill(sv[j]);
-                    inv.fill(si[j]);
-                }
-                (None, None) => unreachable!("log_std is shared or per row"),
+        let invert = squash.is_some() && !self.pre_given && b.a.is_some();
+        let col = |j: usize| j * n..(j + 1) * n;
+        let conv = |v: F| v.to_f64();
+
+        // Column-major scratch of the block: mean, log_std, exp(-log_std), actions (or u).
+        let mut mu = Buf::stale(nd);
+        gather_t(&b.mean, &mut mu, conv);
+        let mut ls = Buf::stale(nd);
+        let mut inv = Buf::stale(nd);
+        match (&b.ls, &self.shared) {
+            (Some(v), _) => {
+                gather_t(v, &mut ls, conv);
+                inv.iter_mut().zip(ls.iter()).for_each(|(i, &s)| *i = -s);
+                exp_inplace(&mut inv);
             }
-            if check {
-                chk.iter_mut().zip(&mu).for_each(|(c, &m)| *c += m * 0.0);
-            }
-            if let Some(av) = &b.a {
-                gather_col(av.column(j), &mut a);
-                if check {
-                    chk.iter_mut().zip(&a).for_each(|(c, &x)| *c += x * 0.0);
-                }
-                if invert {
-                    let bd = squash.expect("bounds");
-                    let (lo, hi) = (bd.low[j], bd.high[j]);
-                    oor.iter_mut()
-                        .zip(&a)
-                        .for_each(|(o, &x)| *o |= x < lo || x > hi);
-                    // u = atanh(2 (a - lo) / (hi - lo) - 1), without the
-                    // cancellation near either bound.
-                    a.iter_mut()
-                        .for_each(|x| *x = 0.5 * ((*x - lo).ln() - (hi - *x).ln()));
+            (None, Some((sv, si))) => {
+                for j in 0..d {
+                    ls[col(j)].fill(sv[j]);
+                    inv[col(j)].fill(si[j]);
                 }
             }
-            if want_lp {
-                match squash {
-                    None => lp
-                        .iter_mut()
-                        .zip(a.iter().zip(&mu))
-                        .zip(ls.iter().zip(&inv))
-                        .for_each(|((l, (&x, &m)), (&s, &iv))| {
-                            let z = (x - m) * iv;
-                            *l += -0.5 * z * z - s;
-                        }),
-                    Some(bd) => {
-                        let lw = (0.5 * (bd.high[j] - bd.low[j])).ln();
-                        lp.iter_mut()
-                            .zip(a.iter().zip(&mu))
-                            .zip(ls.iter().zip(&inv))
-                            .for_each(|((l, (&u, &m)), (&s, &iv))| {
-                                let z = (u - m) * iv;
-                                *l += if u.is_infinite() {
-                                    f64::NEG_INFINITY
-                                } else {
-                                    -0.5 * z * z - s - lw - log1m_tanh2(u)
-                                };
-                            });
-                    }
+            (None, None) => unreachable!("log_std is shared or per row"),
+        }
+        let mut a = Buf::stale(if b.a.is_some() { nd } else { 0 });
+        if let Some(av) = &b.a {
+            gather_t(av, &mut a, conv);
+        }
+        let mut chk = Buf::filled(n, 0.0);
+        if check {
+            for j in 0..d {
+                let c = col(j);
+                chk.iter_mut()
+                    .zip(&mu[c.clone()])
+                    .for_each(|(k, &m)| *k += m * 0.0);
+                if b.ls.is_some() {
+                    chk.iter_mut()
+                        .zip(&ls[c.clone()])
+                        .for_each(|(k, &s)| *k += s * 0.0);
                 }
-            }
-            if want_ent_rows {
-                ent.iter_mut().zip(&ls).for_each(|(e, &s)| *e += s);
-            }
-            if dm.is_some() || dl.is_some() {
-                col.iter_mut()
-                    .zip(col2.iter_mut())
-                    .zip(a.iter().zip(&mu))
-                    .zip(&inv)
-                    .for_each(|(((g, h), (&x, &m)), &iv)| {
-                        let z = (x - m) * iv;
-                        *g = z * iv;
-                        *h = z * z - 1.0;
-                    });
-                if let Some(o) = &mut dm {
-                    scatter_col(&col, o.column_mut(j));
-                }
-                if let Some(o) = &mut dl {
-                    scatter_col(&col2, o.column_mut(j));
-                }
-            }
-            if let Some(o) = &mut smp {
-                // sd = exp(log_std); col = mu + sd * N(0, 1)
-                col2.copy_from_slice(&ls);
-                exp_inplace(&mut col2);
-                for r in 0..n {
-                    let z = if j % 2 == 0 {
-                        let (z0, z1) = streams[r].normal_pair((j / 2) as u64);
-                        spare[r] = z1;
-                        z0
-                    } else {
-                        spare[r]
-                    };
-                    col[r] = mu[r] + col2[r] * z;
-                }
-                match squash {
-                    None => scatter_col(&col, o.column_mut(j)),
-                    Some(bd) => {
-                        if let Some(p) = &mut pre {
-                            scatter_col(&col, p.column_mut(j));
-                        }
-                        let (lo, hi) = (bd.low[j], bd.high[j]);
-                        let w = hi - lo;
-                        col.iter_mut().for_each(|u| {
-                            let x = lo + w * half_tanh_p1(*u);
-                            *u = if x > hi { hi } else { x };
-                        });
-                        scatter_col(&col, o.column_mut(j));
-                    }
+                if b.a.is_some() {
+                    chk.iter_mut().zip(&a[c]).for_each(|(k, &x)| *k += x * 0.0);
                 }
             }
         }
-
-        if (check && any_nan(&chk)) || oor.iter().any(|&o| o) {
+        let mut oor = vec![false; if invert { n } else { 0 }];
+        if invert {
+            let bd = squash.expect("bounds");
+            for j in 0..d {
+                let (lo, hi) = (bd.low[j], bd.high[j]);
+                oor.iter_mut().zip(a[col(j)].iter_mut()).for_each(|(o, x)| {
+                    *o |= *x < lo || *x > hi;
+                    // u = atanh(2 (a - lo) / (hi - lo) - 1), without the
+                    // cancellation near either bound.
+                    *x = 0.5 * ((*x - lo).ln() - (hi - *x).ln());
+                });
+            }
+        }
+        if (check && any_nan(&chk)) || oor.contains(&true) {
             for r in 0..n {
-                if chk[r].is_nan() || oor[r] {
+                if chk[r].is_nan() || oor.get(r).copied().unwrap_or(false) {
                     return Err(self.row_error(
                         &b.mean,
                         b.ls.as_ref(),
@@ -457,20 +385,104 @@ impl Ctx<'_> {
                 }
             }
         }
+
         if let Some(o) = b.log_prob {
+            let mut lp = Buf::filled(n, 0.0);
+            for j in 0..d {
+                let c = col(j);
+                let terms = lp
+                    .iter_mut()
+                    .zip(a[c.clone()].iter().zip(&mu[c.clone()]))
+                    .zip(ls[c.clone()].iter().zip(&inv[c]));
+                match squash {
+                    None => terms.for_each(|((l, (&x, &m)), (&s, &iv))| {
+                        let z = (x - m) * iv;
+                        *l += -0.5 * z * z - s;
+                    }),
+                    Some(bd) => {
+                        let lw = (0.5 * (bd.high[j] - bd.low[j])).ln();
+                        terms.for_each(|((l, (&u, &m)), (&s, &iv))| {
+                            let z = (u - m) * iv;
+                            *l += if u.is_infinite() {
+                                f64::NEG_INFINITY
+                            } else {
+                                -0.5 * z * z - s - lw - log1m_tanh2(u)
+                            };
+                        });
+                    }
+                }
+            }
             let c = -(d as f64) * HALF_LN_2PI;
             lp.iter_mut().for_each(|l| *l += c);
             write_rows(&lp, o);
         }
         if let Some(o) = b.entropy {
+            let mut ent = Buf::filled(n, 0.0);
             match self.entropy_const {
                 Some(c) => ent.fill(c),
                 None => {
+                    for j in 0..d {
+                        ent.iter_mut().zip(&ls[col(j)]).for_each(|(e, &s)| *e += s);
+                    }
                     let c = d as f64 * (0.5 + HALF_LN_2PI);
                     ent.iter_mut().for_each(|e| *e += c);
                 }
             }
             write_rows(&ent, o);
+        }
+        if b.d_mean.is_some() || b.d_log_std.is_some() {
+            let (mut g, mut h) = (Buf::stale(nd), Buf::stale(nd));
+            g.iter_mut()
+                .zip(h.iter_mut())
+                .zip(a.iter().zip(mu.iter()))
+                .zip(inv.iter())
+                .for_each(|(((g, h), (&x, &m)), &iv)| {
+                    let z = (x - m) * iv;
+                    *g = z * iv;
+                    *h = z * z - 1.0;
+                });
+            if let Some(o) = b.d_mean {
+                scatter_t(&g, to2_mut(o));
+            }
+            if let Some(o) = b.d_log_std {
+                scatter_t(&h, to2_mut(o));
+            }
+        }
+        if let (Some(o), Some(seed)) = (b.sample, self.seed) {
+            // u = mean + exp(log_std) * N(0, 1), normals in pairs per row.
+            let mut u = Buf::stale(nd);
+            for r in 0..n {
+                let st = Stream::new(seed, (b.row0 + r) as u64);
+                for p in 0..d.div_ceil(2) {
+                    let (z0, z1) = st.normal_pair(p as u64);
+                    u[2 * p * n + r] = z0;
+                    if 2 * p + 1 < d {
+                        u[(2 * p + 1) * n + r] = z1;
+                    }
+                }
+            }
+            let mut sd = Buf::stale(nd);
+            exp_to(&ls, &mut sd);
+            u.iter_mut()
+                .zip(mu.iter().zip(sd.iter()))
+                .for_each(|(u, (&m, &s))| *u = m + s * *u);
+            match squash {
+                None => scatter_t(&u, to2_mut(o)),
+                Some(bd) => {
+                    if let Some(p) = b.pre {
+                        scatter_t(&u, to2_mut(p));
+                    }
+                    for j in 0..d {
+                        let (lo, hi) = (bd.low[j], bd.high[j]);
+                        let w = hi - lo;
+                        u[col(j)].iter_mut().for_each(|u| {
+                            let x = lo + w * half_tanh_p1(*u);
+                            *u = if x > hi { hi } else { x };
+                        });
+                    }
+                    scatter_t(&u, to2_mut(o));
+                }
+            }
         }
         Ok(())
     }
