@@ -128,7 +128,7 @@ def _optional_refs() -> dict[str, Callable]:
 
 def _have_scipy() -> bool:
     try:
-        import scipy.special  # noqa: F401
+        import scipy.special
         import scipy.stats  # noqa: F401
     except ImportError:
         return False

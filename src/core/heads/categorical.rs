@@ -391,13 +391,18 @@ impl<F: Real> Block<'_, F> {
         ln_inplace(&mut lns);
 
         if let Some(o) = self.log_prob {
-            let v: Vec<f64> = (0..n)
-                .map(|r| z[act[r] as usize * n + r] - lns[r])
-                .collect();
+            let mut v = Buf::stale(n);
+            for (r, ((v, &l), &a)) in v.iter_mut().zip(lns.iter()).zip(&act).enumerate() {
+                *v = z[a as usize * n + r] - l;
+            }
             write_rows(&v, o);
         }
         if let Some(o) = self.entropy {
-            let v: Vec<f64> = (0..n).map(|r| lns[r] - t[r] / s[r]).collect();
+            let mut v = Buf::stale(n);
+            v.iter_mut()
+                .zip(lns.iter())
+                .zip(t.iter().zip(s.iter()))
+                .for_each(|((v, &l), (&t, &s))| *v = l - t / s);
             write_rows(&v, o);
         }
         if let Pick::Sample(seed) = pick {
