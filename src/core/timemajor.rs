@@ -342,14 +342,11 @@ fn run_block<F: Real>(
                         .zip(fix)
                         .zip(carry_y.iter_mut())
                     {
-                        let xv = if te {
-                            0.0
-                        } else if tr || last {
-                            fv
-                        } else {
-                            *cy
-                        };
-                        let g = *y + gamma * xv;
+                        // xv = 0 if te, else fv if (tr or last), else cy; as bit
+                        // masks so the loop vectorises and NaN cannot cross an end.
+                        let fix = mask(tr | last);
+                        let xv = f64::from_bits((fv.to_bits() & fix) | (cy.to_bits() & !fix));
+                        let g = *y + gamma * keep(xv, mask(!te));
                         *y = g;
                         *cy = g;
                     }
@@ -372,9 +369,8 @@ fn run_block<F: Real>(
                         .zip(vnext)
                         .zip(carry_y.iter_mut())
                     {
-                        let vp = if te { 0.0 } else { vn };
-                        let d = *y + gamma * vp - v;
-                        let a = if te || tr { d } else { d + gl * *cy };
+                        let d = *y + gamma * keep(vn, mask(!te)) - v;
+                        let a = d + keep(gl * *cy, mask(!(te | tr)));
                         *y = a;
                         *cy = a;
                     }
@@ -390,6 +386,19 @@ fn run_block<F: Real>(
         }
         t1 = t0;
     }
+}
+
+/// All ones when `b`, else zero: a lane mask for [`keep`].
+#[inline(always)]
+fn mask(b: bool) -> u64 {
+    (b as u64).wrapping_neg()
+}
+
+/// `x` where the mask is set, `+0.0` elsewhere (a select that vectorises and
+/// never turns `0 * NaN` into NaN).
+#[inline(always)]
+fn keep(x: f64, m: u64) -> f64 {
+    f64::from_bits(x.to_bits() & m)
 }
 
 /// Copy a `[rows, w]` view into row-major `f64` scratch.
@@ -514,7 +523,7 @@ mod tests {
     use super::*;
     use ndarray::{Array1, Array2, ShapeBuilder};
 
-    /// A direct transcription of the definitions, one stream at a time.
+    /// Written straight from the definitions, one stream at a time.
     #[allow(clippy::too_many_arguments)]
     fn reference(
         r: &Array2<f64>,
