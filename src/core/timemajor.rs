@@ -491,6 +491,7 @@ mod tests {
     use ndarray::{Array1, Array2, ShapeBuilder};
 
     /// A direct transcription of the definitions, one stream at a time.
+    #[allow(clippy::too_many_arguments)]
     fn reference(
         r: &Array2<f64>,
         v: &Array2<f64>,
