@@ -339,13 +339,14 @@ class ParquetShard:
     def iter_tables(self, names, bounds):
         """Yield arrow tables of the given columns for consecutive row ranges."""
         pa, _ = _pa()
-        batches = self._file.iter_batches(batch_size=65536, columns=list(names), use_threads=False)
+        cols = None if names is None else list(names)
+        batches = self._file.iter_batches(batch_size=65536, columns=cols, use_threads=False)
         pending, have = [], 0
         for a, b in zip(bounds[:-1], bounds[1:]):
             try:
                 while have < b - a:
                     batch = next(batches)
-                    pending.append(batch)
+                    pending.append(pa.Table.from_batches([batch]))
                     have += batch.num_rows
             except StopIteration:
                 raise StoredError(
@@ -355,7 +356,7 @@ class ParquetShard:
                 raise StoredError(
                     f"cannot read (truncated or corrupt): {e}", shard=self.path, step=a
                 ) from None
-            table = pa.Table.from_batches(pending, schema=pending[0].schema)
+            table = pa.concat_tables(pending) if len(pending) > 1 else pending[0]
             yield table.slice(0, b - a)
             rest = table.slice(b - a)
             pending, have = ([rest] if rest.num_rows else []), rest.num_rows
