@@ -1,7 +1,7 @@
 """The ``rollscan`` command: ``process``, ``summary``, ``demo`` and ``bench``.
 
 Exit status: 0 on success, 2 on bad input or usage (one line on stderr, nothing
-written), 130 when interrupted (nothing written).
+written), 130 when interrupted (temporary files removed, no half-written output).
 """
 
 from __future__ import annotations
@@ -219,7 +219,7 @@ def main(argv=None) -> int:
         print(f"rollscan {args.command}: error: {e}", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
-        print(f"rollscan {args.command}: interrupted; no output was written", file=sys.stderr)
+        print(f"rollscan {args.command}: interrupted; unfinished outputs were removed", file=sys.stderr)
         return 130
     finally:
         if old is not None:

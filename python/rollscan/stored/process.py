@@ -166,18 +166,22 @@ def output_names(paths, out_dir):
 
 
 @contextmanager
-def _no_interrupt():
-    """Hold SIGINT/SIGTERM while the finished outputs are renamed into place."""
-    sigs = {signal.SIGINT, signal.SIGTERM}
+def _uninterruptible():
+    """Ignore SIGINT/SIGTERM while the finished outputs are renamed into place.
+
+    Once every output is complete the renames take microseconds; a Ctrl-C then
+    would only leave some inputs processed and others not.
+    """
     try:
-        old = signal.pthread_sigmask(signal.SIG_BLOCK, sigs)
-    except (AttributeError, ValueError):  # not the main thread, or no such call
+        old = {sig: signal.signal(sig, signal.SIG_IGN) for sig in (signal.SIGINT, signal.SIGTERM)}
+    except ValueError:  # not the main thread: signals cannot reach us here anyway
         yield
         return
     try:
         yield
     finally:
-        signal.pthread_sigmask(signal.SIG_SETMASK, old)
+        for sig, handler in old.items():
+            signal.signal(sig, handler)
 
 
 @dataclass
@@ -292,7 +296,7 @@ def process(
         ep_tmp = temps.new(os.path.basename(episodes_path))
         write_table(ep_tmp, table, fmt)
         timings["pass 2 (compute, write)"] = time.perf_counter() - t
-        with _no_interrupt():
+        with _uninterruptible():
             for tmp, target in zip([*finished, ep_tmp], [*outputs, episodes_path]):
                 os.replace(tmp, target)
             temps.paths.clear()
