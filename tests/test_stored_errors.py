@@ -69,13 +69,13 @@ class Exploit:
 
 
 def test_missing_reward_column(tmp_path, shards):
-    d, paths = shards
+    _, paths = shards
     replace(paths[2], reward=None)
     expect_error(tmp_path, paths, paths[2], "'reward'", "missing", "--reward-column")
 
 
 def test_renamed_columns_are_found_by_option(tmp_path, shards):
-    d, paths = shards
+    _, paths = shards
     for p in paths:
         with np.load(p, allow_pickle=False) as z:
             cols = {("gain" if k == "reward" else k): z[k] for k in z.files}

@@ -219,7 +219,10 @@ def main(argv=None) -> int:
         print(f"rollscan {args.command}: error: {e}", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
-        print(f"rollscan {args.command}: interrupted; unfinished outputs were removed", file=sys.stderr)
+        print(
+            f"rollscan {args.command}: interrupted; unfinished outputs were removed",
+            file=sys.stderr,
+        )
         return 130
     finally:
         if old is not None:
