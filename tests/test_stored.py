@@ -303,3 +303,47 @@ def test_python_dash_m_entry_point(tmp_path):
         timeout=60,
     )
     assert p.returncode == 0 and "--chunk-steps" in p.stdout
+
+
+@settings(max_examples=40, deadline=None)
+@given(
+    seed=st.integers(0, 2**31),
+    n_pieces=st.integers(0, 12),
+    gamma=st.floats(0, 1),
+    lam=st.floats(0, 1),
+)
+def test_numpy_reference_kernels_equal_ragged_kernels(seed, n_pieces, gamma, lam):
+    # the NumPy path used by --kernels numpy and the demo, against rollscan.ragged
+    from rollscan.stored import numpy_kernels as ref
+
+    rng = np.random.default_rng(seed)
+    lengths = rng.integers(0, 9, n_pieces)
+    s = int(lengths.sum())
+    r, v = rng.normal(size=s), rng.normal(size=s)
+    terminal = rng.random(n_pieces) < 0.5
+    tail_v, tail_a = rng.normal(size=n_pieces), rng.normal(size=n_pieces)
+    kw = {"terminal": terminal, "tail_values": tail_v}
+    np.testing.assert_allclose(
+        ref.discounted_returns(r, lengths, gamma=gamma, **kw),
+        rollscan.ragged.discounted_returns(r, lengths, gamma=gamma, **kw),
+        **TOL,
+    )
+    got = ref.gae(r, v, lengths, gamma=gamma, lam=lam, tail_advantages=tail_a, **kw)
+    want = rollscan.ragged.gae(r, v, lengths, gamma=gamma, lam=lam, tail_advantages=tail_a, **kw)
+    for g, w in zip(got, want):
+        np.testing.assert_allclose(g, w, **TOL)
+    for gm in (1.0, gamma):
+        np.testing.assert_allclose(
+            ref.episode_sums(r, lengths, gamma=gm),
+            rollscan.ragged.episode_sums(r, lengths, gamma=gm),
+            **TOL,
+        )
+
+
+def test_bench_case_agrees_with_its_reference():
+    from rollscan.bench import stored
+
+    (case,) = stored.cases(quick=True)
+    got, want = case.run(), case.refs["numpy"]()
+    for g, w in zip(got, want):
+        np.testing.assert_allclose(g, w, **TOL)
