@@ -82,10 +82,17 @@ class Layout:
         return out
 
 
+def _stable_order(stream: np.ndarray) -> np.ndarray:
+    """Stable argsort of stream ids; a radix sort when their span fits in 16 bits."""
+    if stream.size and int(stream.max()) - int(stream.min()) < 1 << 16:
+        return np.argsort((stream - stream.min()).astype(np.uint16), kind="stable")
+    return np.argsort(stream, kind="stable")
+
+
 def layout(chunk: ChunkData) -> Layout:
     n, width = chunk.size, chunk.width
     if chunk.stream is not None:
-        order = np.argsort(chunk.stream, kind="stable")
+        order = _stable_order(chunk.stream)
         s = chunk.stream[order]
         starts = np.flatnonzero(np.r_[True, s[1:] != s[:-1]]) if n else np.zeros(0, np.int64)
         counts = np.diff(np.r_[starts, n])
