@@ -127,11 +127,11 @@ class NpzShard:
             for a, b in zip(bounds[:-1], bounds[1:]):
                 yield {name: self._read_rows(name, handles[name], a, b) for name in names}
             for name, h in handles.items():
-                if h is not None and bounds[-1] == self.columns[name].shape[0]:
+                if not isinstance(h, np.ndarray) and bounds[-1] == self.columns[name].shape[0]:
                     self._drain(name, h, bounds[-1])
         finally:
             for h in handles.values():
-                if h is not None and not isinstance(h, np.ndarray):
+                if not isinstance(h, np.ndarray):
                     h.close()
 
     def _open_data(self, name):
