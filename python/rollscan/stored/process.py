@@ -245,6 +245,7 @@ def process(
             raise StoredError(f"the output {target} would overwrite an input; choose another --out")
         if os.path.exists(target) and not force:
             raise StoredError(f"the output {target} exists (use --force to replace it)")
+    created = not os.path.isdir(out_dir)
     os.makedirs(out_dir, exist_ok=True)
     timings["open"] = time.perf_counter() - t0
 
@@ -302,6 +303,8 @@ def process(
             temps.paths.clear()
     except BaseException:
         temps.cleanup()
+        if created and not os.listdir(out_dir):
+            os.rmdir(out_dir)
         raise
     finally:
         bar.close()
