@@ -216,7 +216,7 @@ def test_episode_table_matches_definition(tmp_path):
         shard = np.searchsorted(bounds, rows, side="right") - 1
         np.testing.assert_array_equal(t["shard"], shard)
         np.testing.assert_array_equal(t["first_row"], np.asarray(rows) - bounds[shard])
-        np.testing.assert_array_equal(t["shard_file"], np.asarray(paths)[shard])
+        np.testing.assert_array_equal(t["shard_files"], paths)
 
 
 def test_summary_json_equals_numpy_on_episode_table(tmp_path):
@@ -380,6 +380,10 @@ def test_summary_of_parquet_episode_table(tmp_path):
     paths = write_shards(d, str(tmp_path / "in"), [75], fmt="parquet")
     rep = process(paths, str(tmp_path / "out"), gamma=0.9, lam=0.7)
     assert rep.episodes_path.endswith("episodes.parquet")
+    import pyarrow.parquet as pq
+
+    meta = pq.read_schema(rep.episodes_path).metadata
+    assert json.loads(meta[b"rollscan.shard_files"]) == paths
     from_table = summarise(load_episodes([rep.episodes_path], Names()))
     from_shards = summarise(load_episodes(paths, Names()))
     assert from_table == from_shards

@@ -276,7 +276,7 @@ def finish_chunk(chunk: ChunkData, carry: ChunkCarry, params: Params, kernels):
     return (None if adv is None else lay.put(np.asarray(adv, dtype=np.float64))), ret
 
 
-def episode_table(summaries: list, gamma: float, paths=None) -> dict:
+def episode_table(summaries: list, gamma: float) -> dict:
     """Stitch the pieces of every stream into episodes, ordered by their first step."""
     cat = {
         name: np.concatenate([getattr(s, name) for s in summaries])
@@ -324,8 +324,4 @@ def episode_table(summaries: list, gamma: float, paths=None) -> dict:
         "discounted_return": ep_disc[key].astype(np.float64),
         "ending": _ENDINGS[ending[last][key].astype(np.int64)],
     }
-    if paths is not None:
-        table["shard_file"] = (
-            np.array(paths, dtype=str)[table["shard"]] if len(first) else np.zeros(0, dtype="<U1")
-        )
     return table

@@ -455,14 +455,26 @@ class ParquetOutput:
 # ------------------------------------------------------------ small tables
 
 
-def write_table(path: str, columns: dict, fmt: str):
-    """Write a small table (the per-episode table) in one go to ``path``."""
+def write_table(path: str, columns: dict, fmt: str, shard_files=None):
+    """Write a small table (the per-episode table) in one go to ``path``.
+
+    ``shard_files`` (the input paths, indexed by the table's ``shard`` column)
+    is stored once, not per row: as an extra ``shard_files`` member of an
+    ``.npz``, or as the ``rollscan.shard_files`` (JSON) metadata of a ``.parquet``.
+    """
+    files = [str(p) for p in shard_files or []]
     if fmt == "npz":
+        extra = {"shard_files": np.array(files, dtype=str)} if shard_files is not None else {}
         with open(path, "wb") as f:
-            np.savez(f, **columns)
+            np.savez(f, **columns, **extra)
     else:
+        import json
+
         pa, pq = _pa()
-        pq.write_table(pa.table({k: pa.array(v) for k, v in columns.items()}), path)
+        table = pa.table({k: pa.array(v) for k, v in columns.items()})
+        if shard_files is not None:
+            table = table.replace_schema_metadata({"rollscan.shard_files": json.dumps(files)})
+        pq.write_table(table, path)
 
 
 def read_table(path: str, names=None) -> dict:

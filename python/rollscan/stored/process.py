@@ -262,7 +262,7 @@ def process(
         t = time.perf_counter()
         summaries = [s for shard in per_shard for s in shard]
         carries = cr.combine(summaries)
-        table = cr.episode_table(summaries, params.gamma, paths)
+        table = cr.episode_table(summaries, params.gamma)
         timings["combine carries + episode table"] = time.perf_counter() - t
 
         t = time.perf_counter()
@@ -295,7 +295,7 @@ def process(
             for w in writers:
                 finished.append(w.finish(fn))
         ep_tmp = temps.new(os.path.basename(episodes_path))
-        write_table(ep_tmp, table, fmt)
+        write_table(ep_tmp, table, fmt, shard_files=paths)
         timings["pass 2 (compute, write)"] = time.perf_counter() - t
         with _uninterruptible():
             for tmp, target in zip([*finished, ep_tmp], [*outputs, episodes_path]):
@@ -342,4 +342,4 @@ def episodes(paths, *, names: Names | None = None, chunk_steps=1 << 20, gamma=1.
         ]
     finally:
         bar.close()
-    return cr.episode_table(summaries, gamma, [str(p) for p in paths]), ds
+    return cr.episode_table(summaries, gamma), ds
