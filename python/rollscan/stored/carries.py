@@ -293,11 +293,17 @@ def episode_table(summaries: list, gamma: float) -> dict:
         )
     }
     # stable sort by stream keeps data order inside each stream
-    o = np.argsort(cat["piece_stream"], kind="stable")
-    stream, shard, row = cat["piece_stream"][o], cat["piece_shard"][o], cat["piece_row"][o]
-    length = cat["piece_len"][o].astype(np.int64)
-    psum, pdisc, ending = cat["piece_sum"][o], cat["piece_disc"][o], cat["piece_ending"][o]
+    o = _stable_order(cat["piece_stream"])
+    stream, shard, row = (
+        cat.pop("piece_stream")[o],
+        cat.pop("piece_shard")[o],
+        cat.pop("piece_row")[o],
+    )
+    length = cat.pop("piece_len")[o].astype(np.int64)
+    psum, pdisc = cat.pop("piece_sum")[o], cat.pop("piece_disc")[o]
+    ending = cat.pop("piece_ending")[o]
     n = len(o)
+    del o
     starts_ep = np.ones(n, dtype=bool)
     if n:
         starts_ep[1:] = (stream[1:] != stream[:-1]) | (ending[:-1] != 0)

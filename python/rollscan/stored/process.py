@@ -260,16 +260,24 @@ def process(
         ]
         timings["pass 1 (read, validate, summarise)"] = time.perf_counter() - t
         t = time.perf_counter()
+        chunks_per_shard = [len(shard) for shard in per_shard]
         summaries = [s for shard in per_shard for s in shard]
+        del per_shard
         carries = cr.combine(summaries)
         table = cr.episode_table(summaries, params.gamma)
+        del summaries  # pass 2 needs only the carries
+        # the table is written now, so that it is not held in memory during pass 2
+        ep_tmp = temps.new(os.path.basename(episodes_path))
+        write_table(ep_tmp, table, fmt, shard_files=paths)
+        n_episodes = len(table["episode"])
+        del table
         timings["combine carries + episode table"] = time.perf_counter() - t
 
         t = time.perf_counter()
         moments = Moments()
         finished, writers, k = [], [], 0
         for i, target in enumerate(outputs):
-            n = len(per_shard[i])
+            n = chunks_per_shard[i]
             stem = os.path.basename(target)
             w = finish_shard(
                 ds,
@@ -294,8 +302,6 @@ def process(
             fn = {names["advantage"]: lambda x: (x - mean) / scale}
             for w in writers:
                 finished.append(w.finish(fn))
-        ep_tmp = temps.new(os.path.basename(episodes_path))
-        write_table(ep_tmp, table, fmt, shard_files=paths)
         timings["pass 2 (compute, write)"] = time.perf_counter() - t
         with _uninterruptible():
             for tmp, target in zip([*finished, ep_tmp], [*outputs, episodes_path]):
@@ -309,9 +315,7 @@ def process(
     finally:
         bar.close()
     timings["total"] = time.perf_counter() - t0
-    return Report(
-        outputs, episodes_path, sum(ds.n_rows) * ds.steps_per_row, len(table["episode"]), timings
-    )
+    return Report(outputs, episodes_path, sum(ds.n_rows) * ds.steps_per_row, n_episodes, timings)
 
 
 def episodes(paths, *, names: Names | None = None, chunk_steps=1 << 20, gamma=1.0, progress=False):
