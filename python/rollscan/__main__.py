@@ -1,7 +1,5 @@
-"""``python -m rollscan ...`` runs the ``rollscan`` command."""
-
-import sys
+"""``python -m rollscan ...``: the same as the ``rollscan`` command."""
 
 from rollscan.cli import main
 
-sys.exit(main())
+raise SystemExit(main())

@@ -1,15 +1,13 @@
 """Type stubs for the compiled module ``rollscan._core`` (hand-written)."""
 
-from typing import Any, Optional, Tuple, Union
+from typing import Any
 
-import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
 __version__: str
 
-_Float = Union[np.float32, np.float64]
-_Out = Optional[NDArray[Any]]
-_OutPair = Optional[Tuple[NDArray[Any], NDArray[Any]]]
+_Out = NDArray[Any] | None
+_OutPair = tuple[NDArray[Any], NDArray[Any]] | None
 
 class ShapeError(ValueError): ...
 class InputError(ValueError): ...
@@ -19,12 +17,12 @@ def get_num_threads() -> int: ...
 def _after_fork_in_child() -> None: ...
 def discounted_returns(
     rewards: ArrayLike,
-    terminated: Optional[ArrayLike] = None,
+    terminated: ArrayLike | None = None,
     *,
     gamma: float,
-    truncated: Optional[ArrayLike] = None,
-    next_values: Optional[ArrayLike] = None,
-    bootstrap: Optional[ArrayLike] = None,
+    truncated: ArrayLike | None = None,
+    next_values: ArrayLike | None = None,
+    bootstrap: ArrayLike | None = None,
     time_axis: int = 0,
     check_finite: bool = True,
     out: _Out = None,
@@ -32,25 +30,25 @@ def discounted_returns(
 def gae(
     rewards: ArrayLike,
     values: ArrayLike,
-    terminated: Optional[ArrayLike] = None,
+    terminated: ArrayLike | None = None,
     *,
     gamma: float,
     lam: float,
-    truncated: Optional[ArrayLike] = None,
-    next_values: Optional[ArrayLike] = None,
-    bootstrap: Optional[ArrayLike] = None,
+    truncated: ArrayLike | None = None,
+    next_values: ArrayLike | None = None,
+    bootstrap: ArrayLike | None = None,
     normalize: bool = False,
     eps: float = 1e-08,
     time_axis: int = 0,
     check_finite: bool = True,
     out: _OutPair = None,
-) -> Tuple[NDArray[Any], NDArray[Any]]: ...
+) -> tuple[NDArray[Any], NDArray[Any]]: ...
 def normalize(
     x: ArrayLike,
     *,
     eps: float = 1e-08,
     ddof: int = 0,
-    mask: Optional[ArrayLike] = None,
+    mask: ArrayLike | None = None,
     check_finite: bool = True,
     out: _Out = None,
 ) -> NDArray[Any]: ...
@@ -59,8 +57,8 @@ def ragged_discounted_returns(
     lengths: ArrayLike,
     *,
     gamma: float,
-    terminal: Optional[ArrayLike] = None,
-    tail_values: Optional[ArrayLike] = None,
+    terminal: ArrayLike | None = None,
+    tail_values: ArrayLike | None = None,
     check_finite: bool = True,
     out: _Out = None,
 ) -> NDArray[Any]: ...
@@ -71,14 +69,14 @@ def ragged_gae(
     *,
     gamma: float,
     lam: float,
-    terminal: Optional[ArrayLike] = None,
-    tail_values: Optional[ArrayLike] = None,
-    tail_advantages: Optional[ArrayLike] = None,
+    terminal: ArrayLike | None = None,
+    tail_values: ArrayLike | None = None,
+    tail_advantages: ArrayLike | None = None,
     normalize: bool = False,
     eps: float = 1e-08,
     check_finite: bool = True,
     out: _OutPair = None,
-) -> Tuple[NDArray[Any], NDArray[Any]]: ...
+) -> tuple[NDArray[Any], NDArray[Any]]: ...
 def ragged_episode_sums(
     x: ArrayLike,
     lengths: ArrayLike,

@@ -180,32 +180,57 @@ impl<F: Real> Inputs<'_, '_, '_, F> {
             let end = p.offsets[e + 1];
             let stop = end.min(s1);
             let (tv, ta) = p.tail(e);
+            let (xs, cs) = (&mut x[s - s0..stop - s0], &mut c[s - s0..stop - s0]);
+            let rs = self.r.slice(s![s..stop]);
             match self.kind {
                 Kind::Returns { gamma } => {
-                    for t in s..stop {
-                        let k = t - s0;
-                        x[k] = self.r[t].to_f64();
-                        c[k] = gamma;
+                    match rs.as_slice() {
+                        Some(sl) => xs.iter_mut().zip(sl).for_each(|(x, r)| *x = r.to_f64()),
+                        None => xs
+                            .iter_mut()
+                            .zip(rs.iter())
+                            .for_each(|(x, r)| *x = r.to_f64()),
                     }
+                    cs.fill(gamma);
                     if stop == end {
-                        let k = end - 1 - s0;
-                        x[k] += gamma * tv;
-                        c[k] = 0.0;
+                        let k = stop - s - 1;
+                        xs[k] += gamma * tv;
+                        cs[k] = 0.0;
                     }
                 }
                 Kind::Gae { gamma, lam } => {
-                    let v = self.v.as_ref().expect("gae has values");
+                    let Some(v) = self.v.as_ref() else { return };
                     let gl = gamma * lam;
-                    for t in s..stop {
-                        let k = t - s0;
-                        let vnext = if t + 1 < end { v[t + 1].to_f64() } else { tv };
-                        x[k] = self.r[t].to_f64() + gamma * vnext - v[t].to_f64();
-                        c[k] = gl;
+                    // Steps whose successor lies inside the piece.
+                    let inner = stop.min(end - 1).max(s);
+                    let k_in = inner - s;
+                    let vt = v.slice(s![s..stop]);
+                    let vn = v.slice(s![s + 1..inner + 1]);
+                    match (rs.as_slice(), vt.as_slice(), vn.as_slice()) {
+                        (Some(r), Some(vt), Some(vn)) => {
+                            for ((((x, r), v), w), _) in
+                                xs.iter_mut().zip(r).zip(vt).zip(vn).zip(0..k_in)
+                            {
+                                *x = r.to_f64() + gamma * w.to_f64() - v.to_f64();
+                            }
+                        }
+                        _ => {
+                            for ((((x, r), v), w), _) in xs
+                                .iter_mut()
+                                .zip(rs.iter())
+                                .zip(vt.iter())
+                                .zip(vn.iter())
+                                .zip(0..k_in)
+                            {
+                                *x = r.to_f64() + gamma * w.to_f64() - v.to_f64();
+                            }
+                        }
                     }
+                    cs.fill(gl);
                     if stop == end {
-                        let k = end - 1 - s0;
-                        x[k] += gl * ta;
-                        c[k] = 0.0;
+                        let k = stop - s - 1;
+                        xs[k] = rs[k].to_f64() + gamma * tv - vt[k].to_f64() + gl * ta;
+                        cs[k] = 0.0;
                     }
                 }
             }
@@ -281,9 +306,10 @@ fn check_steps<F: Real>(
     name: &'static str,
     a: &ArrayView1<'_, F>,
     check_finite: bool,
+    par: Par,
 ) -> CoreResult<()> {
     if check_finite {
-        if let Some(i) = a.iter().position(|x| !x.finite()) {
+        if let Some(i) = super::finite::first_non_finite_1d(a, par) {
             return Err(CoreError::non_finite(name, At::Flat(i)));
         }
     }
@@ -316,7 +342,7 @@ pub fn discounted_returns<F: Real>(
     check_unit("gamma", gamma)?;
     check_len("out", out.len(), rewards.len())?;
     check_len("rewards", rewards.len(), pieces.steps())?;
-    check_steps("rewards", &rewards, check_finite)?;
+    check_steps("rewards", &rewards, check_finite, par)?;
     let inp = Inputs {
         r: rewards,
         v: None,
@@ -329,7 +355,10 @@ pub fn discounted_returns<F: Real>(
         .collect();
     blocked(&inp, par, |s0, y| {
         if let Ok(mut o) = outs[s0 / BLOCK].lock() {
-            o.iter_mut().zip(y).for_each(|(o, &y)| *o = F::from_f64(y));
+            match o.as_slice_mut() {
+                Some(d) => d.iter_mut().zip(y).for_each(|(o, &y)| *o = F::from_f64(y)),
+                None => o.iter_mut().zip(y).for_each(|(o, &y)| *o = F::from_f64(y)),
+            }
         }
     });
     Ok(())
@@ -358,8 +387,8 @@ pub fn gae<F: Real>(
     check_len("out[0]", adv.len(), rewards.len())?;
     check_len("out[1]", ret.len(), rewards.len())?;
     check_len("rewards", rewards.len(), pieces.steps())?;
-    check_steps("rewards", &rewards, check_finite)?;
-    check_steps("values", &values, check_finite)?;
+    check_steps("rewards", &rewards, check_finite, par)?;
+    check_steps("values", &values, check_finite, par)?;
     let inp = Inputs {
         r: rewards,
         v: Some(values),
@@ -407,7 +436,7 @@ pub fn episode_sums<F: Real>(
             "one sum per piece",
         ));
     }
-    check_steps("x", &x, check_finite)?;
+    check_steps("x", &x, check_finite, par)?;
     let sums: Vec<f64> = par.map((0..pieces.len()).collect(), |e| {
         let (a, b) = (pieces.offsets[e], pieces.offsets[e + 1]);
         x.slice(s![a..b])

@@ -266,6 +266,11 @@ fn split_cols<F>(mut v: ArrayViewMut2<'_, F>, w: usize) -> Vec<ArrayViewMut2<'_,
 }
 
 /// One block of streams `[m0, m0 + w)`, all rows, bottom-up in tiles.
+///
+/// Each tile is converted to `f64` scratch row by row, then every row is one
+/// branch-free pass over `w` independent streams (the loop vectorises), then
+/// the results are stored. `carry_y` / `carry_v` hold `y` and `V` of the row
+/// just below the tile, so tiles chain exactly.
 fn run_block<F: Real>(
     steps: &Steps<'_, F>,
     kind: Kind,
@@ -277,7 +282,12 @@ fn run_block<F: Real>(
     let w = out_a.ncols();
     let cols = s![.., m0..m0 + w];
     let r = steps.rewards.slice(cols);
-    let v = steps.values.as_ref().map(|a| a.slice(cols));
+    let use_v = matches!(kind, Kind::Gae { .. });
+    let v = steps
+        .values
+        .as_ref()
+        .filter(|_| use_v)
+        .map(|a| a.slice(cols));
     let nv = steps.next_values.as_ref().map(|a| a.slice(cols));
     let term = steps.terminated.as_ref().map(|a| a.slice(cols));
     let trunc = steps.truncated.as_ref().map(|a| a.slice(cols));
@@ -285,17 +295,14 @@ fn run_block<F: Real>(
         Some(b) => b.slice(s![m0..m0 + w]).iter().map(|x| x.to_f64()).collect(),
         None => vec![0.0; w],
     };
-    let use_v = matches!(kind, Kind::Gae { .. });
 
     let rows_per_tile = (TILE / w).max(1);
     let cap = rows_per_tile * w;
     let mut xs = vec![0.0f64; cap];
-    let mut cs = vec![0.0f64; cap];
     let mut vs = vec![0.0f64; if use_v { cap } else { 0 }];
     let mut nvs = vec![0.0f64; if nv.is_some() { cap } else { 0 }];
     let mut tes = vec![false; cap];
     let mut trs = vec![false; cap];
-    // y and V at the row just below the current tile.
     let mut carry_y = vec![0.0f64; w];
     let mut carry_v = boot.clone();
 
@@ -307,9 +314,7 @@ fn run_block<F: Real>(
         let rs = s![t0..t1, ..];
         gather(&r.slice(rs), &mut xs[..n]);
         if let Some(v) = &v {
-            if use_v {
-                gather(&v.slice(rs), &mut vs[..n]);
-            }
+            gather(&v.slice(rs), &mut vs[..n]);
         }
         if let Some(nv) = &nv {
             gather(&nv.slice(rs), &mut nvs[..n]);
@@ -318,52 +323,62 @@ fn run_block<F: Real>(
         gather_flags(trunc.as_ref().map(|a| a.slice(rs)), &mut trs[..n]);
 
         for i in (0..rows).rev() {
-            let last = t0 + i + 1 == t_len;
             let row = i * w..(i + 1) * w;
-            let (x, c) = (&mut xs[row.clone()], &mut cs[row.clone()]);
+            let x = &mut xs[row.clone()];
             let (te, tr) = (&tes[row.clone()], &trs[row.clone()]);
             match kind {
                 Kind::Returns { gamma } => {
-                    for j in 0..w {
-                        let end = te[j] || tr[j] || last;
-                        if end {
-                            let vfix = if te[j] {
-                                0.0
-                            } else if !nvs.is_empty() {
-                                nvs[i * w + j]
-                            } else {
-                                // Only the last row reaches here (validated).
-                                boot[j]
-                            };
-                            x[j] += gamma * vfix;
-                            c[j] = 0.0;
+                    let last = t0 + i + 1 == t_len;
+                    // The value a cut step bootstraps from.
+                    let fix: &[f64] = if !nvs.is_empty() {
+                        &nvs[row.clone()]
+                    } else {
+                        &boot
+                    };
+                    for ((((y, &te), &tr), &fv), cy) in x
+                        .iter_mut()
+                        .zip(te)
+                        .zip(tr)
+                        .zip(fix)
+                        .zip(carry_y.iter_mut())
+                    {
+                        let xv = if te {
+                            0.0
+                        } else if tr || last {
+                            fv
                         } else {
-                            c[j] = gamma;
-                        }
+                            *cy
+                        };
+                        let g = *y + gamma * xv;
+                        *y = g;
+                        *cy = g;
                     }
                 }
                 Kind::Gae { gamma, lam } => {
                     let gl = gamma * lam;
-                    for j in 0..w {
-                        let vt = vs[i * w + j];
-                        let vnext = if te[j] {
-                            0.0
-                        } else if !nvs.is_empty() {
-                            nvs[i * w + j]
-                        } else if i + 1 < rows {
-                            vs[(i + 1) * w + j]
-                        } else {
-                            carry_v[j]
-                        };
-                        x[j] = x[j] + gamma * vnext - vt;
-                        c[j] = if te[j] || tr[j] { 0.0 } else { gl };
+                    let vt = &vs[row.clone()];
+                    let vnext: &[f64] = if !nvs.is_empty() {
+                        &nvs[row.clone()]
+                    } else if i + 1 < rows {
+                        &vs[(i + 1) * w..(i + 2) * w]
+                    } else {
+                        &carry_v
+                    };
+                    for (((((y, &te), &tr), &v), &vn), cy) in x
+                        .iter_mut()
+                        .zip(te)
+                        .zip(tr)
+                        .zip(vt)
+                        .zip(vnext)
+                        .zip(carry_y.iter_mut())
+                    {
+                        let vp = if te { 0.0 } else { vn };
+                        let d = *y + gamma * vp - v;
+                        let a = if te || tr { d } else { d + gl * *cy };
+                        *y = a;
+                        *cy = a;
                     }
                 }
-            }
-            for j in 0..w {
-                let y = x[j] + c[j] * carry_y[j];
-                x[j] = y;
-                carry_y[j] = y;
             }
         }
         if use_v {
@@ -379,32 +394,36 @@ fn run_block<F: Real>(
 
 /// Copy a `[rows, w]` view into row-major `f64` scratch.
 fn gather<F: Real>(src: &ArrayView2<'_, F>, dst: &mut [f64]) {
-    let w = src.ncols();
-    match src.as_slice() {
-        Some(sl) => dst.iter_mut().zip(sl).for_each(|(d, s)| *d = s.to_f64()),
-        None => {
-            for (row, d) in src.rows().into_iter().zip(dst.chunks_mut(w.max(1))) {
-                d.iter_mut()
-                    .zip(row.iter())
-                    .for_each(|(d, s)| *d = s.to_f64());
-            }
+    let w = src.ncols().max(1);
+    if let Some(sl) = src.as_slice() {
+        dst.iter_mut().zip(sl).for_each(|(d, s)| *d = s.to_f64());
+        return;
+    }
+    for (row, d) in src.rows().into_iter().zip(dst.chunks_mut(w)) {
+        match row.as_slice() {
+            Some(sl) => d.iter_mut().zip(sl).for_each(|(d, s)| *d = s.to_f64()),
+            None => d
+                .iter_mut()
+                .zip(row.iter())
+                .for_each(|(d, s)| *d = s.to_f64()),
         }
     }
 }
 
 fn gather_flags(src: Option<ArrayView2<'_, bool>>, dst: &mut [bool]) {
-    match src {
-        None => dst.fill(false),
-        Some(src) => {
-            let w = src.ncols().max(1);
-            match src.as_slice() {
-                Some(sl) => dst.copy_from_slice(sl),
-                None => {
-                    for (row, d) in src.rows().into_iter().zip(dst.chunks_mut(w)) {
-                        d.iter_mut().zip(row.iter()).for_each(|(d, s)| *d = *s);
-                    }
-                }
-            }
+    let Some(src) = src else {
+        dst.fill(false);
+        return;
+    };
+    let w = src.ncols().max(1);
+    if let Some(sl) = src.as_slice() {
+        dst.copy_from_slice(sl);
+        return;
+    }
+    for (row, d) in src.rows().into_iter().zip(dst.chunks_mut(w)) {
+        match row.as_slice() {
+            Some(sl) => d.copy_from_slice(sl),
+            None => d.iter_mut().zip(row.iter()).for_each(|(d, s)| *d = *s),
         }
     }
 }
@@ -412,36 +431,39 @@ fn gather_flags(src: Option<ArrayView2<'_, bool>>, dst: &mut [bool]) {
 /// Store `y (+ add)` into a `[rows, w]` view, rounding once.
 fn scatter<F: Real>(y: &[f64], add: Option<&[f64]>, dst: &mut ArrayViewMut2<'_, F>) {
     let w = dst.ncols().max(1);
-    match (dst.as_slice_mut(), add) {
-        (Some(d), None) => d.iter_mut().zip(y).for_each(|(o, &y)| *o = F::from_f64(y)),
-        (Some(d), Some(a)) => d
+    let store = |d: &mut [F], y: &[f64], a: Option<&[f64]>| match a {
+        None => d.iter_mut().zip(y).for_each(|(o, &y)| *o = F::from_f64(y)),
+        Some(a) => d
             .iter_mut()
             .zip(y)
             .zip(a)
             .for_each(|((o, &y), &a)| *o = F::from_f64(y + a)),
-        (None, _) => {
-            for (i, mut row) in dst.rows_mut().into_iter().enumerate() {
-                let ys = &y[i * w..(i + 1) * w];
-                match add {
-                    None => Zip::from(&mut row)
-                        .and(ys)
-                        .for_each(|o, &y| *o = F::from_f64(y)),
-                    Some(a) => {
-                        let a = &a[i * w..(i + 1) * w];
-                        Zip::from(&mut row)
-                            .and(ys)
-                            .and(a)
-                            .for_each(|o, &y, &a| *o = F::from_f64(y + a))
-                    }
-                }
-            }
+    };
+    if let Some(d) = dst.as_slice_mut() {
+        store(d, y, add);
+        return;
+    }
+    for (i, mut row) in dst.rows_mut().into_iter().enumerate() {
+        let ys = &y[i * w..(i + 1) * w];
+        let a = add.map(|a| &a[i * w..(i + 1) * w]);
+        match row.as_slice_mut() {
+            Some(d) => store(d, ys, a),
+            None => match a {
+                None => Zip::from(&mut row)
+                    .and(ys)
+                    .for_each(|o, &y| *o = F::from_f64(y)),
+                Some(a) => Zip::from(&mut row)
+                    .and(ys)
+                    .and(a)
+                    .for_each(|o, &y, &a| *o = F::from_f64(y + a)),
+            },
         }
     }
 }
 
 /// The first `(t, m)` (row-major) where `a` is not finite.
 pub fn first_non_finite_2d<F: Real>(a: &ArrayView2<'_, F>, par: Par) -> Option<(usize, usize)> {
-    first_where(a, par, |x: &F| !x.finite())
+    first_where(a, par, |x: &F| !x.finite(), super::finite::all_finite)
 }
 
 fn check_finite_2d<F: Real>(name: &'static str, a: &ArrayView2<'_, F>, par: Par) -> CoreResult<()> {
@@ -452,14 +474,16 @@ fn check_finite_2d<F: Real>(name: &'static str, a: &ArrayView2<'_, F>, par: Par)
 }
 
 fn first_true(a: &ArrayView2<'_, bool>, par: Par) -> Option<(usize, usize)> {
-    first_where(a, par, |x: &bool| *x)
+    first_where(a, par, |x: &bool| *x, |s: &[bool]| !s.contains(&true))
 }
 
-/// Row-major first element satisfying `bad`, searched block-parallel.
-fn first_where<T: Sync, P: Fn(&T) -> bool + Sync>(
+/// Row-major first element satisfying `bad`, searched block-parallel;
+/// `quick_ok(block)` may prove a contiguous block clean without `bad`.
+fn first_where<T: Sync, P: Fn(&T) -> bool + Sync, Q: Fn(&[T]) -> bool + Sync>(
     a: &ArrayView2<'_, T>,
     par: Par,
     bad: P,
+    quick_ok: Q,
 ) -> Option<(usize, usize)> {
     let (rows, cols) = a.dim();
     if rows == 0 || cols == 0 {
@@ -471,8 +495,8 @@ fn first_where<T: Sync, P: Fn(&T) -> bool + Sync>(
         let r1 = (r0 + rows_per).min(rows);
         let blk = a.slice(s![r0..r1, ..]);
         if let Some(sl) = blk.as_slice() {
-            // Contiguous: a quick all-pass first, the position only on failure.
-            if !sl.iter().any(&bad) {
+            // Contiguous: a quick vectorised pass first, the position only on failure.
+            if quick_ok(sl) {
                 return None;
             }
             return sl.iter().position(&bad).map(|k| (r0 + k / cols, k % cols));
