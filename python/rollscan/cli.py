@@ -104,7 +104,7 @@ def build_parser() -> argparse.ArgumentParser:
         help="compiled kernels, or the NumPy reference path (default rollscan)",
     )
     p.add_argument("--force", action="store_true", help="replace existing outputs")
-    p.add_argument("--quiet", action="store_true", help="no progress bar")
+    p.add_argument("--quiet", action="store_true", help="no progress bar, no closing line")
     _add_columns(p, outputs=True)
 
     s = sub.add_parser(
