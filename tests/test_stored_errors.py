@@ -275,3 +275,23 @@ def test_interrupted_run_leaves_nothing(tmp_path):
         for name in left:
             os.remove(out / name)
     assert (130, True) in outcomes, outcomes
+
+
+def test_parquet_null_reward_and_truncated_parquet(tmp_path):
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    d = make_data(np.random.default_rng(7), 40, layout="streams")
+    paths = write_shards(d, str(tmp_path / "in"), [20], fmt="parquet")
+    table = pq.read_table(paths[1])
+    reward = table.column("reward").to_pylist()
+    reward[5] = None
+    i = table.schema.get_field_index("reward")
+    pq.write_table(table.set_column(i, "reward", pa.array(reward, pa.float64())), paths[1])
+    # chunks of 4 rows: the step is counted from the shard's start, not the chunk's
+    expect_error(
+        tmp_path, paths, paths[1], "'reward'", "step 5", "null", extra=("--chunk-steps", 4)
+    )
+    data = Path(paths[0]).read_bytes()
+    Path(paths[0]).write_bytes(data[: len(data) - 40])
+    expect_error(tmp_path, paths, paths[0], "truncated or corrupt")

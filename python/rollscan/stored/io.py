@@ -362,18 +362,18 @@ class ParquetShard:
             pending, have = ([rest] if rest.num_rows else []), rest.num_rows
 
     def iter_chunks(self, names, bounds, with_table=False):
-        for table in self.iter_tables(None if with_table else names, bounds):
-            arrays = {name: _to_numpy(table.column(name), self.path, name) for name in names}
+        for a, table in zip(bounds, self.iter_tables(None if with_table else names, bounds)):
+            arrays = {name: _to_numpy(table.column(name), self.path, name, a) for name in names}
             yield (arrays, table) if with_table else arrays
 
 
-def _to_numpy(col, path, name):
+def _to_numpy(col, path, name, row0=0):
     pa, _ = _pa()
     if col.null_count:
         import pyarrow.compute as pc
 
         first = int(pc.index(pc.is_null(col), True).as_py())
-        raise StoredError("has a missing (null) value", shard=path, column=name, step=first)
+        raise StoredError("has a missing (null) value", shard=path, column=name, step=row0 + first)
     arr = col.combine_chunks()
     if pa.types.is_fixed_size_list(arr.type):
         width = arr.type.list_size
