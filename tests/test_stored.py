@@ -249,6 +249,10 @@ def test_summary_json_equals_numpy_on_episode_table(tmp_path):
                 assert s[key][stat] == pytest.approx(float(fn(x)), rel=1e-12, abs=1e-12)
     p = run("summary", *paths)
     assert p.returncode == 0 and "episodes" in p.stdout and "median" in p.stdout
+    # processed shards (with advantage and return columns) summarise the same
+    p = run("summary", *rep.outputs, "--json")
+    assert p.returncode == 0, p.stderr
+    assert json.loads(p.stdout) == s
 
 
 def test_summary_plot_writes_png(tmp_path):

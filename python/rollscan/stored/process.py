@@ -220,7 +220,7 @@ def process(
     paths = [str(p) for p in paths]
     shards = [open_shard(p) for p in paths]
     try:
-        ds = describe_dataset(shards, names, need_bootstrap=True)
+        ds = describe_dataset(shards, names, writing=True)
     finally:
         for s in shards:
             s.close()
@@ -323,7 +323,7 @@ def episodes(paths, *, names: Names | None = None, chunk_steps=1 << 20, gamma=1.
     names = names or Names()
     shards = [open_shard(str(p)) for p in paths]
     try:
-        ds = describe_dataset(shards, names, need_bootstrap=False)
+        ds = describe_dataset(shards, names, writing=False)
     finally:
         for s in shards:
             s.close()

@@ -88,8 +88,11 @@ def _explain_missing(shard, key, names: Names, cols):
     )
 
 
-def describe_shard(shard, names: Names, *, need_bootstrap: bool) -> dict:
-    """Header-level checks of one shard; returns what it holds."""
+def describe_shard(shard, names: Names, *, writing: bool) -> dict:
+    """Header-level checks of one shard; returns what it holds.
+
+    ``writing``: the shard is to get the output columns, which must not exist yet.
+    """
     cols = shard.columns
     for key in ("reward", "terminated"):
         if names[key] not in cols:
@@ -132,7 +135,7 @@ def describe_shard(shard, names: Names, *, need_bootstrap: bool) -> dict:
     for col in cols.values():
         if not col.shape or col.shape[0] != reward.shape[0]:
             raise _mismatch(shard, col, reward)
-    for key in ("advantage", "return"):
+    for key in ("advantage", "return") if writing else ():
         if present[key]:
             raise StoredError(
                 f"already exists; the output column would replace it (choose another name with --{key}-column)",
@@ -162,11 +165,11 @@ def _mismatch(shard, col, reward):
     )
 
 
-def describe_dataset(shards, names: Names, *, need_bootstrap: bool) -> Dataset:
+def describe_dataset(shards, names: Names, *, writing: bool) -> Dataset:
     """Check every shard's headers and that all shards agree."""
     if not shards:
         raise StoredError("no input shards given")
-    described = [describe_shard(s, names, need_bootstrap=need_bootstrap) for s in shards]
+    described = [describe_shard(s, names, writing=writing) for s in shards]
     first = described[0]
     for shard, d in zip(shards, described):
         if (d["width"] is None) != (first["width"] is None):
