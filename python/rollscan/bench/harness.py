@@ -26,7 +26,7 @@ from typing import Callable
 import numpy as np
 
 #: Modules of this package that contribute cases, in print order.
-MODULES = ("core", "heads", "policy")
+MODULES = ("core", "heads", "policy", "stored")
 
 
 @dataclass
