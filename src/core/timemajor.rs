@@ -296,7 +296,7 @@ fn run_block<F: Real>(
         None => vec![0.0; w],
     };
 
-    let rows_per_tile = (TILE / w).max(1);
+    let rows_per_tile = (TILE / w).clamp(1, t_len.max(1));
     let cap = rows_per_tile * w;
     let mut xs = vec![0.0f64; cap];
     let mut vs = vec![0.0f64; if use_v { cap } else { 0 }];
