@@ -58,7 +58,12 @@ impl<'a, F: Real> Steps<'a, F> {
     }
 
     /// Shape, rule and (optionally) finiteness checks shared by the kernels.
-    fn validate(&self, need_values: bool, check_finite: bool, par: Par) -> CoreResult<()> {
+    pub(crate) fn validate(
+        &self,
+        need_values: bool,
+        check_finite: bool,
+        par: Par,
+    ) -> CoreResult<()> {
         let shape = self.rewards.shape();
         let same = |name: &'static str, s: Option<&[usize]>| -> CoreResult<()> {
             match s {
@@ -125,11 +130,48 @@ impl<'a, F: Real> Steps<'a, F> {
     }
 }
 
-/// Which recurrence to run.
-#[derive(Debug, Clone, Copy)]
-enum Kind {
-    Returns { gamma: f64 },
-    Gae { gamma: f64, lam: f64 },
+/// Discounted returns: `x = r (+ gamma * V'_t at an end or the last row)`,
+/// `c = gamma * (1 - end)`.
+struct ReturnsRule {
+    gamma: f64,
+}
+
+impl StepRule for ReturnsRule {
+    const VALUES: bool = false;
+    #[inline]
+    fn terms(&self, row: &Row<'_>, x: &mut [f64], c: &mut [f64], _aux: &mut [f64]) {
+        let gamma = self.gamma;
+        for j in 0..x.len() {
+            let end = row.te[j] || row.tr[j] || row.last;
+            if end {
+                // Only the last row reaches here without an end flag or
+                // next_values (validated), and then V'_t is the bootstrap.
+                x[j] += gamma * row.v_prime(j);
+                c[j] = 0.0;
+            } else {
+                c[j] = gamma;
+            }
+        }
+    }
+}
+
+/// GAE: `x = delta_t`, `c = gamma * lam * (1 - end)`.
+struct GaeRule {
+    gamma: f64,
+    lam: f64,
+}
+
+impl StepRule for GaeRule {
+    const VALUES: bool = true;
+    #[inline]
+    fn terms(&self, row: &Row<'_>, x: &mut [f64], c: &mut [f64], _aux: &mut [f64]) {
+        let (gamma, gl) = (self.gamma, self.gamma * self.lam);
+        for j in 0..x.len() {
+            let vnext = row.v_prime(j);
+            x[j] = x[j] + gamma * vnext - row.values[j];
+            c[j] = if row.te[j] || row.tr[j] { 0.0 } else { gl };
+        }
+    }
 }
 
 /// Discounted returns `G_t = r_t + gamma * X_t` (module docs for `X_t`),
@@ -144,7 +186,15 @@ pub fn discounted_returns<F: Real>(
     check_unit("gamma", gamma)?;
     steps.validate(false, check_finite, par)?;
     check_out("out", out.shape(), steps.rewards.shape())?;
-    run(steps, Kind::Returns { gamma }, out, None, par);
+    run(
+        steps,
+        &[],
+        &ReturnsRule { gamma },
+        (Store::Y, None),
+        out,
+        None,
+        par,
+    );
     Ok(())
 }
 
@@ -184,7 +234,9 @@ pub fn gae<F: Real>(
     }
     run(
         steps,
-        Kind::Gae { gamma, lam },
+        &[],
+        &GaeRule { gamma, lam },
+        (Store::Y, Some(Store::YPlusV)),
         adv.view_mut(),
         Some(ret),
         par,
@@ -195,7 +247,7 @@ pub fn gae<F: Real>(
     Ok(())
 }
 
-fn check_out(name: &'static str, got: &[usize], want: &[usize]) -> CoreResult<()> {
+pub(crate) fn check_out(name: &'static str, got: &[usize], want: &[usize]) -> CoreResult<()> {
     if got != want {
         return Err(CoreError::shape_mismatch(
             name,
@@ -227,13 +279,80 @@ fn block_width(t: usize, m: usize, par: Par) -> usize {
     m.div_ceil(want_blocks).clamp(1, 256)
 }
 
-fn run<F: Real>(
+/// The gathered inputs of one row of a block of `w` streams, in `f64`.
+pub(crate) struct Row<'s> {
+    /// This is the last row of the buffer (`t = T - 1`).
+    pub last: bool,
+    /// `V(s_t)` (empty unless the rule gathers values).
+    pub values: &'s [f64],
+    /// `V(s_{t+1})` from the values array: the next row, or the bootstrap at
+    /// the last row (empty unless the rule gathers values; then the bootstrap).
+    pub values_below: &'s [f64],
+    /// `next_values[t]`, if given.
+    pub next_values: Option<&'s [f64]>,
+    /// `terminated[t]` / `truncated[t]` (all false when not given).
+    pub te: &'s [bool],
+    /// See `te`.
+    pub tr: &'s [bool],
+    /// `y_{t+1}`: the recurrence's value at the row below (0 below the last row).
+    pub y_below: &'s [f64],
+    /// The extra per-step inputs of the rule, this row.
+    pub extra: [&'s [f64]; MAX_EXTRA],
+}
+
+impl Row<'_> {
+    /// The bootstrap rule `V'_t` of the module docs for stream `j`.
+    #[inline(always)]
+    pub fn v_prime(&self, j: usize) -> f64 {
+        if self.te[j] {
+            0.0
+        } else if let Some(nv) = self.next_values {
+            nv[j]
+        } else {
+            self.values_below[j]
+        }
+    }
+}
+
+/// How one step feeds the reverse recurrence `y_t = x_t + c_t * y_{t+1}`
+/// of a block of streams. The tile loop (gathering, carries, tiling,
+/// parallel split, storing) is shared; a rule only builds the per-step terms.
+pub(crate) trait StepRule: Sync {
+    /// Whether `values` are gathered (and `Row::values*` filled).
+    const VALUES: bool;
+    /// Fill `x` (holding `r_t` on entry) and `c` for one row; optionally
+    /// write a per-step by-product into `aux` (stored with [`Store::Aux`]).
+    fn terms(&self, row: &Row<'_>, x: &mut [f64], c: &mut [f64], aux: &mut [f64]);
+}
+
+/// What an output array receives.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub(crate) enum Store {
+    /// The recurrence value `y_t`.
+    Y,
+    /// `y_t + V(s_t)`.
+    YPlusV,
+    /// The rule's by-product.
+    Aux,
+}
+
+/// The most extra per-step inputs a rule may read.
+pub(crate) const MAX_EXTRA: usize = 2;
+
+/// Run `rule` over all streams into `out_a` (and `out_b`), each receiving
+/// what `stores` says. `extra` are `[T, M]` views of the rule's own inputs
+/// (already validated by the caller).
+pub(crate) fn run<F: Real, R: StepRule>(
     steps: &Steps<'_, F>,
-    kind: Kind,
+    extra: &[ArrayView2<'_, F>],
+    rule: &R,
+    stores: (Store, Option<Store>),
     out_a: ArrayViewMut2<'_, F>,
     out_b: Option<ArrayViewMut2<'_, F>>,
     par: Par,
 ) {
+    debug_assert!(extra.len() <= MAX_EXTRA);
+    debug_assert_eq!(stores.1.is_some(), out_b.is_some());
     let (t, m) = steps.dims();
     if t == 0 || m == 0 {
         return;
@@ -250,7 +369,9 @@ fn run<F: Real>(
         .enumerate()
         .map(|(i, (a, b))| (i * w, a, b))
         .collect();
-    par.for_each(items, |(m0, a, b)| run_block(steps, kind, m0, a, b));
+    par.for_each(items, |(m0, a, b)| {
+        run_block(steps, extra, rule, stores, m0, a, b)
+    });
 }
 
 /// Cut a `[T, M]` view into column blocks of width `w` (the last may be narrower).
@@ -266,9 +387,11 @@ fn split_cols<F>(mut v: ArrayViewMut2<'_, F>, w: usize) -> Vec<ArrayViewMut2<'_,
 }
 
 /// One block of streams `[m0, m0 + w)`, all rows, bottom-up in tiles.
-fn run_block<F: Real>(
+fn run_block<F: Real, R: StepRule>(
     steps: &Steps<'_, F>,
-    kind: Kind,
+    extra: &[ArrayView2<'_, F>],
+    rule: &R,
+    stores: (Store, Option<Store>),
     m0: usize,
     mut out_a: ArrayViewMut2<'_, F>,
     mut out_b: Option<ArrayViewMut2<'_, F>>,
@@ -281,11 +404,13 @@ fn run_block<F: Real>(
     let nv = steps.next_values.as_ref().map(|a| a.slice(cols));
     let term = steps.terminated.as_ref().map(|a| a.slice(cols));
     let trunc = steps.truncated.as_ref().map(|a| a.slice(cols));
+    let ex: Vec<ArrayView2<'_, F>> = extra.iter().map(|a| a.slice(cols)).collect();
     let boot: Vec<f64> = match &steps.bootstrap {
         Some(b) => b.slice(s![m0..m0 + w]).iter().map(|x| x.to_f64()).collect(),
         None => vec![0.0; w],
     };
-    let use_v = matches!(kind, Kind::Gae { .. });
+    let use_v = R::VALUES;
+    let use_aux = stores.0 == Store::Aux || stores.1 == Some(Store::Aux);
 
     let rows_per_tile = (TILE / w).max(1);
     let cap = rows_per_tile * w;
@@ -293,11 +418,14 @@ fn run_block<F: Real>(
     let mut cs = vec![0.0f64; cap];
     let mut vs = vec![0.0f64; if use_v { cap } else { 0 }];
     let mut nvs = vec![0.0f64; if nv.is_some() { cap } else { 0 }];
+    let mut exs: Vec<Vec<f64>> = ex.iter().map(|_| vec![0.0f64; cap]).collect();
+    let mut aux = vec![0.0f64; if use_aux { cap } else { 0 }];
     let mut tes = vec![false; cap];
     let mut trs = vec![false; cap];
     // y and V at the row just below the current tile.
     let mut carry_y = vec![0.0f64; w];
-    let mut carry_v = boot.clone();
+    let mut carry_v = boot;
+    let empty: &[f64] = &[];
 
     let mut t1 = t_len;
     while t1 > 0 {
@@ -314,52 +442,47 @@ fn run_block<F: Real>(
         if let Some(nv) = &nv {
             gather(&nv.slice(rs), &mut nvs[..n]);
         }
+        for (e, buf) in ex.iter().zip(exs.iter_mut()) {
+            gather(&e.slice(rs), &mut buf[..n]);
+        }
         gather_flags(term.as_ref().map(|a| a.slice(rs)), &mut tes[..n]);
         gather_flags(trunc.as_ref().map(|a| a.slice(rs)), &mut trs[..n]);
 
         for i in (0..rows).rev() {
-            let last = t0 + i + 1 == t_len;
             let row = i * w..(i + 1) * w;
-            let (x, c) = (&mut xs[row.clone()], &mut cs[row.clone()]);
-            let (te, tr) = (&tes[row.clone()], &trs[row.clone()]);
-            match kind {
-                Kind::Returns { gamma } => {
-                    for j in 0..w {
-                        let end = te[j] || tr[j] || last;
-                        if end {
-                            let vfix = if te[j] {
-                                0.0
-                            } else if !nvs.is_empty() {
-                                nvs[i * w + j]
-                            } else {
-                                // Only the last row reaches here (validated).
-                                boot[j]
-                            };
-                            x[j] += gamma * vfix;
-                            c[j] = 0.0;
-                        } else {
-                            c[j] = gamma;
-                        }
-                    }
-                }
-                Kind::Gae { gamma, lam } => {
-                    let gl = gamma * lam;
-                    for j in 0..w {
-                        let vt = vs[i * w + j];
-                        let vnext = if te[j] {
-                            0.0
-                        } else if !nvs.is_empty() {
-                            nvs[i * w + j]
-                        } else if i + 1 < rows {
-                            vs[(i + 1) * w + j]
-                        } else {
-                            carry_v[j]
-                        };
-                        x[j] = x[j] + gamma * vnext - vt;
-                        c[j] = if te[j] || tr[j] { 0.0 } else { gl };
-                    }
-                }
+            let mut extra_rows = [empty; MAX_EXTRA];
+            for (k, buf) in exs.iter().enumerate() {
+                extra_rows[k] = &buf[row.clone()];
             }
+            let (values, values_below): (&[f64], &[f64]) = if !use_v {
+                (empty, &carry_v)
+            } else if i + 1 < rows {
+                (&vs[row.clone()], &vs[(i + 1) * w..(i + 2) * w])
+            } else {
+                (&vs[row.clone()], &carry_v)
+            };
+            let inputs = Row {
+                last: t0 + i + 1 == t_len,
+                values,
+                values_below,
+                next_values: if nvs.is_empty() {
+                    None
+                } else {
+                    Some(&nvs[row.clone()])
+                },
+                te: &tes[row.clone()],
+                tr: &trs[row.clone()],
+                y_below: &carry_y,
+                extra: extra_rows,
+            };
+            let x = &mut xs[row.clone()];
+            let c = &mut cs[row.clone()];
+            let a: &mut [f64] = if use_aux {
+                &mut aux[row.clone()]
+            } else {
+                &mut []
+            };
+            rule.terms(&inputs, x, c, a);
             for j in 0..w {
                 let y = x[j] + c[j] * carry_y[j];
                 x[j] = y;
@@ -369,9 +492,14 @@ fn run_block<F: Real>(
         if use_v {
             carry_v.copy_from_slice(&vs[..w]);
         }
-        scatter(&xs[..n], None, &mut out_a.slice_mut(rs));
-        if let Some(b) = &mut out_b {
-            scatter(&xs[..n], Some(&vs[..n]), &mut b.slice_mut(rs));
+        let store = |what: Store, dst: &mut ArrayViewMut2<'_, F>| match what {
+            Store::Y => scatter(&xs[..n], None, dst),
+            Store::YPlusV => scatter(&xs[..n], Some(&vs[..n]), dst),
+            Store::Aux => scatter(&aux[..n], None, dst),
+        };
+        store(stores.0, &mut out_a.slice_mut(rs));
+        if let (Some(b), Some(what)) = (&mut out_b, stores.1) {
+            store(what, &mut b.slice_mut(rs));
         }
         t1 = t0;
     }
@@ -444,7 +572,11 @@ pub fn first_non_finite_2d<F: Real>(a: &ArrayView2<'_, F>, par: Par) -> Option<(
     first_where(a, par, |x: &F| !x.finite())
 }
 
-fn check_finite_2d<F: Real>(name: &'static str, a: &ArrayView2<'_, F>, par: Par) -> CoreResult<()> {
+pub(crate) fn check_finite_2d<F: Real>(
+    name: &'static str,
+    a: &ArrayView2<'_, F>,
+    par: Par,
+) -> CoreResult<()> {
     match first_non_finite_2d(a, par) {
         Some((t, m)) => Err(CoreError::non_finite(name, At::TimeStream(t, m))),
         None => Ok(()),
@@ -491,6 +623,7 @@ mod tests {
     use ndarray::{Array1, Array2, ShapeBuilder};
 
     /// A direct transcription of the definitions, one stream at a time.
+    #[allow(clippy::too_many_arguments)]
     fn reference(
         r: &Array2<f64>,
         v: &Array2<f64>,
