@@ -17,6 +17,7 @@ pub mod ragged;
 pub mod scan;
 pub mod stats;
 pub mod timemajor;
+pub mod vtrace;
 
 pub use error::{At, CoreError, CoreResult};
 pub use float::Real;
