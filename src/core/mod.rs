@@ -13,6 +13,7 @@
 pub mod error;
 pub mod float;
 pub mod par;
+pub mod policy;
 pub mod ragged;
 pub mod scan;
 pub mod stats;
