@@ -15,6 +15,7 @@ pub mod float;
 pub mod par;
 pub mod policy;
 pub mod ragged;
+pub mod running;
 pub mod scan;
 pub mod stats;
 pub mod timemajor;
