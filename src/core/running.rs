@@ -197,8 +197,9 @@ pub struct ScalerParams {
 /// R_m   <- 0 if terminated[t, m] or truncated[t, m]
 /// ```
 ///
-/// `std` is the population std of every running return seen so far. A row at
-/// a time makes the result independent of how the steps are chunked.
+/// `std` is the population std of every running return seen so far; it is
+/// exactly 0 while every return seen is equal. A row at a time makes the
+/// result independent of how the steps are chunked.
 pub fn scale_rewards<F: Real>(
     rewards: &ArrayView2<'_, F>,
     terminated: Option<&ArrayView2<'_, bool>>,
@@ -239,8 +240,16 @@ pub fn scale_rewards<F: Real>(
             st.returns[m] = p.gamma * st.returns[m] + rewards[[t, m]].to_f64();
         }
         if n > 0 {
-            let mean = st.returns.iter().sum::<f64>() / n as f64;
-            let m2 = st.returns.iter().map(|r| (r - mean) * (r - mean)).sum();
+            // Two-pass about the first value: a row of equal returns gives
+            // exactly mean = R_0 and m2 = 0, so "no spread yet" is exact.
+            let x0 = st.returns[0];
+            let md = st.returns.iter().map(|r| r - x0).sum::<f64>() / n as f64;
+            let mean = x0 + md;
+            let m2 = st
+                .returns
+                .iter()
+                .map(|r| (r - x0 - md) * (r - x0 - md))
+                .sum();
             st.moments = st.moments.merge(&VecMoments {
                 count: n as u64,
                 mean: vec![mean],
