@@ -1,1 +1,22 @@
+//! The PyO3 layer: extract and validate arguments, release the GIL, run the
+//! core on the crate's Rayon pool, map errors. No numerics live here.
 
+mod convert;
+mod errors;
+mod layout;
+mod ragged;
+mod returns;
+mod threads;
+
+use pyo3::prelude::*;
+
+/// The compiled half of ``rollscan``; import ``rollscan`` instead.
+#[pymodule]
+fn _core(m: &Bound<'_, PyModule>) -> PyResult<()> {
+    m.add("__version__", env!("CARGO_PKG_VERSION"))?;
+    errors::register(m)?;
+    threads::register(m)?;
+    returns::register(m)?;
+    ragged::register(m)?;
+    Ok(())
+}

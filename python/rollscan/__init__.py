@@ -1,0 +1,41 @@
+"""rollscan: fast, exact post-processing of reinforcement-learning rollouts.
+
+Rust kernels (parallel, GIL released, zero-copy on NumPy arrays) for the
+steps between collecting rollouts and taking a policy-gradient step:
+discounted returns, GAE advantages with correct bootstraps at time limits,
+normalisation, ragged episodes (``rollscan.ragged``), action-head
+log-probabilities and entropies, off-policy corrections, running statistics.
+"""
+
+from __future__ import annotations
+
+import os as _os
+
+from . import _core, ragged
+from ._core import (
+    InputError,
+    ShapeError,
+    __version__,
+    discounted_returns,
+    gae,
+    get_num_threads,
+    normalize,
+    set_num_threads,
+)
+
+# The worker threads of a parent process do not exist in a forked child:
+# start a fresh pool there on first use.
+if hasattr(_os, "register_at_fork"):
+    _os.register_at_fork(after_in_child=_core._after_fork_in_child)
+
+__all__ = [
+    "InputError",
+    "ShapeError",
+    "__version__",
+    "discounted_returns",
+    "gae",
+    "get_num_threads",
+    "normalize",
+    "ragged",
+    "set_num_threads",
+]

@@ -1,0 +1,252 @@
+//! Argument conversion at the edge: dtype promotion, flag and index arrays,
+//! `out=` validation. Everything here runs attached to the interpreter and
+//! returns NumPy arrays whose views the kernels then read in place.
+
+use super::errors::ShapeError;
+use crate::core::error::fmt_shape;
+use numpy::prelude::*;
+use numpy::{dtype, Element, PyArrayDescr, PyArrayDyn, PyUntypedArray};
+use pyo3::exceptions::PyTypeError;
+use pyo3::prelude::*;
+use pyo3::types::PyDict;
+
+/// The storage dtype a call runs in.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Dt {
+    F32,
+    F64,
+}
+
+/// Per-step arrays promoted to one float dtype, in argument order.
+pub enum Floats<'py> {
+    F32(Vec<Option<Bound<'py, PyArrayDyn<f32>>>>),
+    F64(Vec<Option<Bound<'py, PyArrayDyn<f64>>>>),
+}
+
+/// `numpy.asarray(obj)` unless `obj` already is an ndarray (no copy for
+/// arrays, memmaps, and objects exposing `__array__` / the buffer protocol).
+pub fn ndarray<'py>(
+    py: Python<'py>,
+    name: &str,
+    obj: &Bound<'py, PyAny>,
+) -> PyResult<Bound<'py, PyUntypedArray>> {
+    if let Ok(a) = obj.cast::<PyUntypedArray>() {
+        return Ok(a.clone());
+    }
+    let np = py.import("numpy")?;
+    let a = np.getattr("asarray")?.call1((obj,)).map_err(|e| {
+        PyTypeError::new_err(format!("{name} cannot be converted to a NumPy array: {e}"))
+    })?;
+    Ok(a.cast_into::<PyUntypedArray>()?)
+}
+
+fn dtype_str(d: &Bound<'_, PyArrayDescr>) -> String {
+    d.str()
+        .map(|s| s.to_string())
+        .unwrap_or_else(|_| "?".into())
+}
+
+/// How a float argument's dtype maps to a storage dtype: `(dt, exact)`, where
+/// `exact` means no conversion is needed.
+fn float_kind(name: &str, a: &Bound<'_, PyUntypedArray>) -> PyResult<(Dt, bool)> {
+    let d = a.dtype();
+    match (d.kind(), d.itemsize()) {
+        (b'f', 4) => Ok((Dt::F32, d.is_native_byteorder() != Some(false))),
+        (b'f', 8) => Ok((Dt::F64, d.is_native_byteorder() != Some(false))),
+        (b'f', 2) => Ok((Dt::F32, false)),
+        (b'i' | b'u' | b'b', _) => Ok((Dt::F64, false)),
+        _ => Err(PyTypeError::new_err(format!(
+            "{name} has unsupported dtype {}; rollscan computes in float32 or float64 \
+             (integer and bool arrays are promoted to float64)",
+            dtype_str(&d)
+        ))),
+    }
+}
+
+/// Convert to `F`, copying only when the dtype differs.
+pub fn to_dtype<'py, F: Element>(
+    py: Python<'py>,
+    a: &Bound<'py, PyUntypedArray>,
+) -> PyResult<Bound<'py, PyArrayDyn<F>>> {
+    if let Ok(t) = a.cast::<PyArrayDyn<F>>() {
+        return Ok(t.clone());
+    }
+    let kw = PyDict::new(py);
+    kw.set_item("dtype", dtype::<F>(py))?;
+    let np = py.import("numpy")?;
+    let c = np.getattr("asarray")?.call((a,), Some(&kw))?;
+    Ok(c.cast_into::<PyArrayDyn<F>>()?)
+}
+
+/// Promote several per-step float arguments to one dtype: float32 only when
+/// every given argument is float32; otherwise float64.
+pub fn promote_floats<'py>(
+    py: Python<'py>,
+    args: &[(&str, Option<&Bound<'py, PyAny>>)],
+) -> PyResult<Floats<'py>> {
+    let mut arrs = Vec::with_capacity(args.len());
+    let mut any64 = false;
+    for (name, obj) in args {
+        match obj {
+            None => arrs.push(None),
+            Some(o) if o.is_none() => arrs.push(None),
+            Some(o) => {
+                let a = ndarray(py, name, o)?;
+                let (dt, _) = float_kind(name, &a)?;
+                any64 |= dt == Dt::F64;
+                arrs.push(Some(a));
+            }
+        }
+    }
+    if any64 {
+        let v = arrs
+            .iter()
+            .map(|a| a.as_ref().map(|a| to_dtype::<f64>(py, a)).transpose())
+            .collect::<PyResult<_>>()?;
+        Ok(Floats::F64(v))
+    } else {
+        let v = arrs
+            .iter()
+            .map(|a| a.as_ref().map(|a| to_dtype::<f32>(py, a)).transpose())
+            .collect::<PyResult<_>>()?;
+        Ok(Floats::F32(v))
+    }
+}
+
+/// A per-stream / per-piece array or a scalar, cast to the call's dtype `F`.
+pub fn cast_float<'py, F: Element>(
+    py: Python<'py>,
+    name: &str,
+    obj: &Bound<'py, PyAny>,
+) -> PyResult<Bound<'py, PyArrayDyn<F>>> {
+    let a = ndarray(py, name, obj)?;
+    float_kind(name, &a)?;
+    to_dtype::<F>(py, &a)
+}
+
+/// A boolean flag array. Integer and float arrays are accepted as
+/// "non-zero is True".
+pub fn as_flags<'py>(
+    py: Python<'py>,
+    name: &str,
+    obj: &Bound<'py, PyAny>,
+) -> PyResult<Bound<'py, PyArrayDyn<bool>>> {
+    let a = ndarray(py, name, obj)?;
+    if let Ok(b) = a.cast::<PyArrayDyn<bool>>() {
+        return Ok(b.clone());
+    }
+    let d = a.dtype();
+    match d.kind() {
+        b'i' | b'u' | b'f' | b'b' => {
+            let np = py.import("numpy")?;
+            let b = np.getattr("not_equal")?.call1((&a, 0))?;
+            Ok(b.cast_into::<PyArrayDyn<bool>>()?)
+        }
+        _ => Err(PyTypeError::new_err(format!(
+            "{name} has unsupported dtype {}; flags must be bool (or integer / float, non-zero meaning True)",
+            dtype_str(&d)
+        ))),
+    }
+}
+
+/// An integer array of any integer dtype, as int64.
+pub fn as_indices<'py>(
+    py: Python<'py>,
+    name: &str,
+    obj: &Bound<'py, PyAny>,
+) -> PyResult<Bound<'py, PyArrayDyn<i64>>> {
+    let a = ndarray(py, name, obj)?;
+    if let Ok(b) = a.cast::<PyArrayDyn<i64>>() {
+        return Ok(b.clone());
+    }
+    let d = a.dtype();
+    match d.kind() {
+        b'i' | b'u' => to_dtype::<i64>(py, &a),
+        _ => Err(PyTypeError::new_err(format!(
+            "{name} has unsupported dtype {}; it must be an integer array",
+            dtype_str(&d)
+        ))),
+    }
+}
+
+/// The output array: the caller's `out` after checking it (exact shape and
+/// dtype, writable), or a new zero-filled C-order array.
+pub fn out_array<'py, F: Element>(
+    py: Python<'py>,
+    name: &str,
+    out: Option<&Bound<'py, PyAny>>,
+    shape: &[usize],
+) -> PyResult<Bound<'py, PyArrayDyn<F>>> {
+    let o = match out {
+        None => return Ok(PyArrayDyn::<F>::zeros(py, shape, false)),
+        Some(o) => o,
+    };
+    let a = o.cast::<PyUntypedArray>().map_err(|_| {
+        PyTypeError::new_err(format!(
+            "{name} must be a NumPy array, got {}",
+            type_name(o)
+        ))
+    })?;
+    let want = dtype::<F>(py);
+    if !a.dtype().is_equiv_to(&want) {
+        return Err(PyTypeError::new_err(format!(
+            "{name} has dtype {} but the result is {}",
+            dtype_str(&a.dtype()),
+            dtype_str(&want)
+        )));
+    }
+    if a.shape() != shape {
+        return Err(ShapeError::new_err(format!(
+            "{name} has shape {} but the result has shape {}",
+            fmt_shape(a.shape()),
+            fmt_shape(shape)
+        )));
+    }
+    let writable: bool = a.getattr("flags")?.getattr("writeable")?.extract()?;
+    if !writable {
+        return Err(PyTypeError::new_err(format!("{name} is read-only")));
+    }
+    Ok(a.cast::<PyArrayDyn<F>>()?.clone())
+}
+
+/// The two optional outputs of a two-result kernel.
+pub type OutPair<'py> = (Option<Bound<'py, PyAny>>, Option<Bound<'py, PyAny>>);
+
+/// `out=` for a kernel with two array results: `None` or a 2-tuple.
+pub fn out_pair<'py>(out: Option<&Bound<'py, PyAny>>) -> PyResult<OutPair<'py>> {
+    match out {
+        None => Ok((None, None)),
+        Some(o) if o.is_none() => Ok((None, None)),
+        Some(o) => {
+            let t: (Bound<'py, PyAny>, Bound<'py, PyAny>) = o.extract().map_err(|_| {
+                PyTypeError::new_err(format!(
+                    "out must be a tuple of two arrays, got {}",
+                    type_name(o)
+                ))
+            })?;
+            Ok((Some(t.0), Some(t.1)))
+        }
+    }
+}
+
+pub fn type_name(o: &Bound<'_, PyAny>) -> String {
+    o.get_type()
+        .name()
+        .map(|n| n.to_string())
+        .unwrap_or_else(|_| "?".into())
+}
+
+/// Normalise a possibly negative axis for `ndim` dimensions.
+pub fn norm_axis(name: &str, axis: i64, ndim: usize) -> PyResult<usize> {
+    let n = ndim as i64;
+    if axis >= n || axis < -n {
+        return Err(ShapeError::new_err(format!(
+            "{name}={axis} is out of range for an array with {ndim} dimension(s)"
+        )));
+    }
+    Ok(if axis < 0 {
+        (axis + n) as usize
+    } else {
+        axis as usize
+    })
+}

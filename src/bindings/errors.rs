@@ -1,0 +1,69 @@
+//! The Python exception hierarchy and the one place core errors become PyErr.
+
+use crate::core::{At, CoreError};
+use pyo3::create_exception;
+use pyo3::exceptions::{PyRuntimeError, PyValueError};
+use pyo3::prelude::*;
+
+create_exception!(
+    rollscan,
+    ShapeError,
+    PyValueError,
+    "Array shapes that do not line up. The message names both arguments and both shapes."
+);
+create_exception!(
+    rollscan,
+    InputError,
+    PyValueError,
+    "A bad value: NaN/inf where not allowed, a coefficient outside its range, lengths that do \
+     not add up, an action out of range or masked out. The message names the argument and the \
+     first offending index."
+);
+
+/// Map a core error, formatting indices with the core's own coordinates.
+pub fn core_err(e: CoreError) -> PyErr {
+    core_err_at(e, &|at| at.to_string())
+}
+
+/// Map a core error, letting the caller translate an index back to the user's
+/// own layout (axis order, shape); `locate` returns text such as `[3, 1]`.
+pub fn core_err_at(e: CoreError, locate: &dyn Fn(At) -> String) -> PyErr {
+    match e {
+        CoreError::Shape(m) => ShapeError::new_err(m),
+        CoreError::Input {
+            arg,
+            at: Some(at),
+            what,
+        } => InputError::new_err(format!("{arg}{} {what}", locate(at))),
+        CoreError::Input {
+            arg,
+            at: None,
+            what,
+        } => InputError::new_err(format!("{arg} {what}")),
+    }
+}
+
+/// A Rust panic is a bug in rollscan, never validation: say so.
+pub fn internal_error(what: &str) -> PyErr {
+    PyRuntimeError::new_err(format!(
+        "rollscan internal error ({what}); this is a bug, please report it with the call that caused it"
+    ))
+}
+
+/// `"[3, 1]"` for an index tuple.
+pub fn fmt_index(ix: &[usize]) -> String {
+    format!(
+        "[{}]",
+        ix.iter()
+            .map(|i| i.to_string())
+            .collect::<Vec<_>>()
+            .join(", ")
+    )
+}
+
+pub fn register(m: &Bound<'_, PyModule>) -> PyResult<()> {
+    let py = m.py();
+    m.add("ShapeError", py.get_type::<ShapeError>())?;
+    m.add("InputError", py.get_type::<InputError>())?;
+    Ok(())
+}
