@@ -10,10 +10,9 @@ import threading
 
 import numpy as np
 import pytest
+import rollscan
 from hypothesis import given, settings
 from hypothesis import strategies as st
-
-import rollscan
 from rollscan import (
     EpisodeTracker,
     InputError,
@@ -117,7 +116,9 @@ def test_vtrace_on_policy_equals_gae_lambda_returns(lam):
     np.testing.assert_allclose(vs, ret, rtol=1e-12, atol=1e-12)
 
 
-@pytest.mark.parametrize(("rho_bar", "c_bar", "lam"), [(1.0, 1.0, 1.0), (2.0, 0.5, 0.9), (np.inf, 1.0, 1.0)])
+@pytest.mark.parametrize(
+    ("rho_bar", "c_bar", "lam"), [(1.0, 1.0, 1.0), (2.0, 0.5, 0.9), (np.inf, 1.0, 1.0)]
+)
 def test_vtrace_matches_recursive_loop_off_policy(rho_bar, c_bar, lam):
     # Espeholt et al. 2018, section 4.1 (reference loop above).
     rng = np.random.default_rng(1)
@@ -129,7 +130,17 @@ def test_vtrace_matches_recursive_loop_off_policy(rho_bar, c_bar, lam):
     np.testing.assert_allclose(vs, rv, rtol=1e-12, atol=1e-12)
     np.testing.assert_allclose(pg, rp, rtol=1e-12, atol=1e-12)
     vs, pg = vtrace(
-        blp, tlp, r, v, term, gamma=0.9, truncated=trunc, next_values=nv, rho_bar=rho_bar, c_bar=c_bar, lam=lam
+        blp,
+        tlp,
+        r,
+        v,
+        term,
+        gamma=0.9,
+        truncated=trunc,
+        next_values=nv,
+        rho_bar=rho_bar,
+        c_bar=c_bar,
+        lam=lam,
     )
     rv, rp = vtrace_ref(blp, tlp, r, v, term, trunc, nv, None, 0.9, lam, rho_bar, c_bar)
     np.testing.assert_allclose(vs, rv, rtol=1e-12, atol=1e-12)
@@ -156,10 +167,14 @@ def test_vtrace_property_against_loop(t_len, n, seed, gamma):
 def test_vtrace_float32_is_float64_rounded_once():
     # API.md section 1: float32 accumulates in float64 and rounds once.
     rng = np.random.default_rng(2)
-    blp, tlp, r, v, _, term, _, boot = (a.astype(np.float32) if a.dtype == np.float64 else a for a in rollout(rng, 50, 6))
+    blp, tlp, r, v, _, term, _, boot = (
+        a.astype(np.float32) if a.dtype == np.float64 else a for a in rollout(rng, 50, 6)
+    )
     vs32, pg32 = vtrace(blp, tlp, r, v, term, gamma=0.99, bootstrap=boot.astype(np.float64))
     assert vs32.dtype == np.float32 and pg32.dtype == np.float32
-    vs64, pg64 = vtrace(*(a.astype(np.float64) for a in (blp, tlp, r, v)), term, gamma=0.99, bootstrap=boot)
+    vs64, pg64 = vtrace(
+        *(a.astype(np.float64) for a in (blp, tlp, r, v)), term, gamma=0.99, bootstrap=boot
+    )
     np.testing.assert_array_equal(vs32, vs64.astype(np.float32))
     np.testing.assert_array_equal(pg32, pg64.astype(np.float32))
     # Mixed float32 / float64 per-step arrays promote to float64.
@@ -188,7 +203,9 @@ def test_vtrace_strided_layouts_and_time_axis():
     np.testing.assert_array_equal(vs, want_vs.T[::-1])
     np.testing.assert_array_equal(pg, want_pg.T[::-1])
     # [T] and [T, N, K].
-    vs1, _ = vtrace(blp[:, 0], tlp[:, 0], r[:, 0], v[:, 0], term[:, 0], gamma=0.9, bootstrap=boot[0])
+    vs1, _ = vtrace(
+        blp[:, 0], tlp[:, 0], r[:, 0], v[:, 0], term[:, 0], gamma=0.9, bootstrap=boot[0]
+    )
     np.testing.assert_array_equal(vs1, want_vs[:, 0])
     r3 = [a.reshape(40, 3, 2) for a in (blp, tlp, r, v)]
     vs3, _ = vtrace(*r3, term.reshape(40, 3, 2), gamma=0.9, bootstrap=boot.reshape(3, 2))
@@ -390,7 +407,9 @@ def split_batches(draw, shape=()):
     n = draw(st.integers(1, 60))
     seed = draw(st.integers(0, 2**32 - 1))
     rng = np.random.default_rng(seed)
-    x = rng.normal(loc=draw(st.floats(-100, 100)), scale=draw(st.floats(0.01, 10)), size=(n, *shape))
+    x = rng.normal(
+        loc=draw(st.floats(-100, 100)), scale=draw(st.floats(0.01, 10)), size=(n, *shape)
+    )
     cuts = sorted(draw(st.lists(st.integers(0, n), max_size=6)))
     return x, np.split(x, cuts)
 
@@ -550,8 +569,12 @@ def chunked_rollout(draw):
     n = draw(st.integers(1, 3))
     r = np.array(draw(st.lists(st.integers(-4, 4), min_size=t_len * n, max_size=t_len * n)), float)
     r = r.reshape(t_len, n) / 2.0
-    term = np.array(draw(st.lists(st.booleans(), min_size=t_len * n, max_size=t_len * n)), bool).reshape(t_len, n)
-    trunc = np.array(draw(st.lists(st.booleans(), min_size=t_len * n, max_size=t_len * n)), bool).reshape(t_len, n)
+    term = np.array(
+        draw(st.lists(st.booleans(), min_size=t_len * n, max_size=t_len * n)), bool
+    ).reshape(t_len, n)
+    trunc = np.array(
+        draw(st.lists(st.booleans(), min_size=t_len * n, max_size=t_len * n)), bool
+    ).reshape(t_len, n)
     term &= np.random.default_rng(t_len).random((t_len, n)) < 0.3
     trunc &= np.random.default_rng(t_len + 1).random((t_len, n)) < 0.2
     cuts = sorted(draw(st.lists(st.integers(0, t_len), max_size=8)))
@@ -559,13 +582,20 @@ def chunked_rollout(draw):
 
 
 @FAST
-@given(data=chunked_rollout(), gamma=st.sampled_from([0.0, 0.5, 0.9, 1.0]), clip=st.sampled_from([None, 2.0]))
+@given(
+    data=chunked_rollout(),
+    gamma=st.sampled_from([0.0, 0.5, 0.9, 1.0]),
+    clip=st.sampled_from([None, 2.0]),
+)
 def test_return_scaler_any_chunking_equals_loop(data, gamma, clip):
     # scaler_ref above (plain loop over the concatenated chunks).
     r, term, trunc, cuts = data
     n = r.shape[1]
     s = ReturnScaler(n, gamma=gamma, clip=clip)
-    got = [s.scale(rc, tc, truncated=uc) for rc, tc, uc in zip(*(np.split(a, cuts) for a in (r, term, trunc)))]
+    got = [
+        s.scale(rc, tc, truncated=uc)
+        for rc, tc, uc in zip(*(np.split(a, cuts) for a in (r, term, trunc)))
+    ]
     got = np.concatenate(got) if got else np.zeros((0, n))
     want, ret = scaler_ref(r, term | trunc, gamma, 1e-8, clip)
     np.testing.assert_allclose(got, want, rtol=1e-10, atol=1e-12)
@@ -643,7 +673,10 @@ def test_episode_tracker_any_chunking_equals_loop(data):
     for rc, tc, uc in zip(*(np.split(a, cuts) for a in (r, term, trunc))):
         d = tr.update(rc, tc, uc)
         assert d.returns.dtype == np.float64 and d.lengths.dtype == np.int64
-        got += [(a, b, c, t0 + s, e) for a, b, c, s, e in zip(d.returns, d.lengths, d.env, d.step, d.terminated)]
+        got += [
+            (a, b, c, t0 + s, e)
+            for a, b, c, s, e in zip(d.returns, d.lengths, d.env, d.step, d.terminated)
+        ]
         t0 += rc.shape[0]
     want, acc, length = tracker_ref(r, term, trunc)
     assert len(got) == len(want)

@@ -1,15 +1,15 @@
 """Type stubs for the compiled module ``rollscan._core`` (hand-written)."""
 
-from typing import Any, Optional, Tuple, Union
+from typing import Any, final
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
 __version__: str
 
-_Float = Union[np.float32, np.float64]
-_Out = Optional[NDArray[Any]]
-_OutPair = Optional[Tuple[NDArray[Any], NDArray[Any]]]
+_Float = np.float32 | np.float64
+_Out = NDArray[Any] | None
+_OutPair = tuple[NDArray[Any], NDArray[Any]] | None
 
 class ShapeError(ValueError): ...
 class InputError(ValueError): ...
@@ -19,12 +19,12 @@ def get_num_threads() -> int: ...
 def _after_fork_in_child() -> None: ...
 def discounted_returns(
     rewards: ArrayLike,
-    terminated: Optional[ArrayLike] = None,
+    terminated: ArrayLike | None = None,
     *,
     gamma: float,
-    truncated: Optional[ArrayLike] = None,
-    next_values: Optional[ArrayLike] = None,
-    bootstrap: Optional[ArrayLike] = None,
+    truncated: ArrayLike | None = None,
+    next_values: ArrayLike | None = None,
+    bootstrap: ArrayLike | None = None,
     time_axis: int = 0,
     check_finite: bool = True,
     out: _Out = None,
@@ -32,25 +32,25 @@ def discounted_returns(
 def gae(
     rewards: ArrayLike,
     values: ArrayLike,
-    terminated: Optional[ArrayLike] = None,
+    terminated: ArrayLike | None = None,
     *,
     gamma: float,
     lam: float,
-    truncated: Optional[ArrayLike] = None,
-    next_values: Optional[ArrayLike] = None,
-    bootstrap: Optional[ArrayLike] = None,
+    truncated: ArrayLike | None = None,
+    next_values: ArrayLike | None = None,
+    bootstrap: ArrayLike | None = None,
     normalize: bool = False,
     eps: float = 1e-08,
     time_axis: int = 0,
     check_finite: bool = True,
     out: _OutPair = None,
-) -> Tuple[NDArray[Any], NDArray[Any]]: ...
+) -> tuple[NDArray[Any], NDArray[Any]]: ...
 def normalize(
     x: ArrayLike,
     *,
     eps: float = 1e-08,
     ddof: int = 0,
-    mask: Optional[ArrayLike] = None,
+    mask: ArrayLike | None = None,
     check_finite: bool = True,
     out: _Out = None,
 ) -> NDArray[Any]: ...
@@ -59,8 +59,8 @@ def ragged_discounted_returns(
     lengths: ArrayLike,
     *,
     gamma: float,
-    terminal: Optional[ArrayLike] = None,
-    tail_values: Optional[ArrayLike] = None,
+    terminal: ArrayLike | None = None,
+    tail_values: ArrayLike | None = None,
     check_finite: bool = True,
     out: _Out = None,
 ) -> NDArray[Any]: ...
@@ -71,14 +71,14 @@ def ragged_gae(
     *,
     gamma: float,
     lam: float,
-    terminal: Optional[ArrayLike] = None,
-    tail_values: Optional[ArrayLike] = None,
-    tail_advantages: Optional[ArrayLike] = None,
+    terminal: ArrayLike | None = None,
+    tail_values: ArrayLike | None = None,
+    tail_advantages: ArrayLike | None = None,
     normalize: bool = False,
     eps: float = 1e-08,
     check_finite: bool = True,
     out: _OutPair = None,
-) -> Tuple[NDArray[Any], NDArray[Any]]: ...
+) -> tuple[NDArray[Any], NDArray[Any]]: ...
 def ragged_episode_sums(
     x: ArrayLike,
     lengths: ArrayLike,
@@ -87,3 +87,102 @@ def ragged_episode_sums(
     check_finite: bool = True,
     out: _Out = None,
 ) -> NDArray[Any]: ...
+
+# --- Policy-update and off-policy kernels, private kernels of rollscan.streaming
+
+@final
+class SurrogateResult:
+    @property
+    def loss(self) -> float: ...
+    @property
+    def grad(self) -> NDArray[Any]: ...
+    @property
+    def clip_fraction(self) -> float: ...
+    @property
+    def approx_kl(self) -> float: ...
+    @property
+    def ratio_mean(self) -> float: ...
+    @property
+    def ratio_max(self) -> float: ...
+    @property
+    def count(self) -> int: ...
+
+def clipped_surrogate(
+    new_log_prob: ArrayLike,
+    old_log_prob: ArrayLike,
+    advantages: ArrayLike,
+    *,
+    clip: float = 0.2,
+    mask: ArrayLike | None = None,
+    check_finite: bool = True,
+    out: _Out = None,
+) -> SurrogateResult: ...
+def vtrace(
+    behaviour_log_prob: ArrayLike,
+    target_log_prob: ArrayLike,
+    rewards: ArrayLike,
+    values: ArrayLike,
+    terminated: ArrayLike | None = None,
+    *,
+    gamma: float,
+    bootstrap: ArrayLike | None = None,
+    rho_bar: float = 1.0,
+    c_bar: float = 1.0,
+    lam: float = 1.0,
+    truncated: ArrayLike | None = None,
+    next_values: ArrayLike | None = None,
+    time_axis: int = 0,
+    check_finite: bool = True,
+    out: _OutPair = None,
+) -> tuple[NDArray[Any], NDArray[Any]]: ...
+def _batch_moments(
+    batch: ArrayLike, *, check_finite: bool = True
+) -> tuple[int, NDArray[np.float64], NDArray[np.float64]]: ...
+def _merge_moments(
+    count_a: int,
+    mean_a: NDArray[np.float64],
+    m2_a: NDArray[np.float64],
+    count_b: int,
+    mean_b: NDArray[np.float64],
+    m2_b: NDArray[np.float64],
+) -> tuple[int, NDArray[np.float64], NDArray[np.float64]]: ...
+def _affine_clip(
+    x: ArrayLike,
+    shift: NDArray[np.float64],
+    scale: NDArray[np.float64],
+    *,
+    clip: float | None = None,
+    out: _Out = None,
+) -> NDArray[Any]: ...
+def _scale_rewards(
+    rewards: ArrayLike,
+    terminated: ArrayLike | None,
+    truncated: ArrayLike | None,
+    returns: NDArray[np.float64],
+    count: int,
+    mean: float,
+    m2: float,
+    *,
+    gamma: float,
+    eps: float,
+    clip: float | None = None,
+    check_finite: bool = True,
+    out: _Out = None,
+) -> tuple[NDArray[Any], NDArray[np.float64], int, float, float]: ...
+def _track_episodes(
+    rewards: ArrayLike,
+    terminated: ArrayLike | None,
+    truncated: ArrayLike | None,
+    returns: NDArray[np.float64],
+    lengths: NDArray[np.int64],
+    *,
+    check_finite: bool = True,
+) -> tuple[
+    NDArray[np.float64],
+    NDArray[np.int64],
+    NDArray[np.int64],
+    NDArray[np.int64],
+    NDArray[np.bool_],
+    NDArray[np.float64],
+    NDArray[np.int64],
+]: ...

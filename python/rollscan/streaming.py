@@ -12,7 +12,7 @@ an identical object from it.
 from __future__ import annotations
 
 import threading
-from typing import Any, NamedTuple, Optional, Union
+from typing import Any, NamedTuple
 
 import numpy as np
 from numpy.typing import ArrayLike, DTypeLike, NDArray
@@ -52,7 +52,7 @@ def _num_envs(num_envs: int) -> int:
     return n
 
 
-def _streams(name: str, a: Optional[ArrayLike], num_envs: int, t_len: Optional[int] = None) -> Any:
+def _streams(name: str, a: ArrayLike | None, num_envs: int, t_len: int | None = None) -> Any:
     """``a`` as a ``[T, num_envs]`` view (a ``[T]`` array when num_envs == 1)."""
     if a is None:
         return None
@@ -61,7 +61,9 @@ def _streams(name: str, a: Optional[ArrayLike], num_envs: int, t_len: Optional[i
         arr = arr[:, None]
     if arr.ndim != 2 or arr.shape[1] != num_envs or (t_len is not None and arr.shape[0] != t_len):
         want = f"(T, {num_envs})" if t_len is None else f"({t_len}, {num_envs})"
-        raise ShapeError(f"{name} has shape {_fmt(arr.shape)} but num_envs is {num_envs}; {name} must be {want}")
+        raise ShapeError(
+            f"{name} has shape {_fmt(arr.shape)} but num_envs is {num_envs}; {name} must be {want}"
+        )
     return arr
 
 
@@ -93,7 +95,7 @@ class RunningMoments:
         (4, 2.5, 1.25)
     """
 
-    def __init__(self, shape: Union[int, tuple[int, ...]] = (), *, dtype: DTypeLike = np.float64) -> None:
+    def __init__(self, shape: int | tuple[int, ...] = (), *, dtype: DTypeLike = np.float64) -> None:
         shp = (shape,) if isinstance(shape, (int, np.integer)) else tuple(shape)
         if any(int(s) != s or s < 0 for s in shp):
             raise InputError(f"shape must be a tuple of non-negative integers, got {shape!r}")
@@ -182,9 +184,9 @@ class RunningMoments:
         self,
         x: ArrayLike,
         *,
-        clip: Optional[float] = None,
+        clip: float | None = None,
         eps: float = 1e-8,
-        out: Optional[NDArray[Any]] = None,
+        out: NDArray[Any] | None = None,
     ) -> NDArray[Any]:
         """``clip((x - mean) / (std + eps), -clip, clip)``, broadcasting the
         statistics over the leading axes of ``x`` (``x.shape`` must end with
@@ -284,7 +286,9 @@ class ReturnScaler:
         (3, 2)
     """
 
-    def __init__(self, num_envs: int, *, gamma: float, eps: float = 1e-8, clip: Optional[float] = None) -> None:
+    def __init__(
+        self, num_envs: int, *, gamma: float, eps: float = 1e-8, clip: float | None = None
+    ) -> None:
         self._n = _num_envs(num_envs)
         if not (np.isfinite(gamma) and 0.0 <= gamma <= 1.0):
             raise InputError(f"gamma must be in [0, 1], got {gamma}")
@@ -328,11 +332,11 @@ class ReturnScaler:
     def scale(
         self,
         rewards: ArrayLike,
-        terminated: Optional[ArrayLike] = None,
+        terminated: ArrayLike | None = None,
         *,
-        truncated: Optional[ArrayLike] = None,
+        truncated: ArrayLike | None = None,
         check_finite: bool = True,
-        out: Optional[NDArray[Any]] = None,
+        out: NDArray[Any] | None = None,
     ) -> NDArray[Any]:
         """Scaled rewards of a chunk ``[T, num_envs]`` (``[T]`` when num_envs == 1).
 
@@ -344,7 +348,12 @@ class ReturnScaler:
         te = _streams("terminated", terminated, self._n, r.shape[0])
         tr = _streams("truncated", truncated, self._n, r.shape[0])
         o = out
-        if out is not None and np.ndim(rewards) == 1 and isinstance(out, np.ndarray) and out.ndim == 1:
+        if (
+            out is not None
+            and np.ndim(rewards) == 1
+            and isinstance(out, np.ndarray)
+            and out.ndim == 1
+        ):
             o = out[:, None]
         with self._lock:
             n, mean, m2 = self._moments
@@ -389,7 +398,9 @@ class ReturnScaler:
         """Rebuild an object from ``state()`` (also as loaded by ``np.load``)."""
         ret = _get(state, "returns", "ReturnScaler").astype(np.float64)
         if ret.ndim != 1 or ret.size == 0:
-            raise ShapeError(f"state['returns'] has shape {_fmt(ret.shape)}; it must be (num_envs,)")
+            raise ShapeError(
+                f"state['returns'] has shape {_fmt(ret.shape)}; it must be (num_envs,)"
+            )
         clip = float(_get(state, "clip", "ReturnScaler"))
         obj = cls(
             ret.size,
@@ -472,8 +483,8 @@ class EpisodeTracker:
     def update(
         self,
         rewards: ArrayLike,
-        terminated: Optional[ArrayLike] = None,
-        truncated: Optional[ArrayLike] = None,
+        terminated: ArrayLike | None = None,
+        truncated: ArrayLike | None = None,
         *,
         check_finite: bool = True,
     ) -> FinishedEpisodes:
@@ -487,7 +498,9 @@ class EpisodeTracker:
         te = _streams("terminated", terminated, self._n, r.shape[0])
         tr = _streams("truncated", truncated, self._n, r.shape[0])
         with self._lock:
-            res = _core._track_episodes(r, te, tr, self._returns, self._lengths, check_finite=check_finite)
+            res = _core._track_episodes(
+                r, te, tr, self._returns, self._lengths, check_finite=check_finite
+            )
             ret, length, env, step, term, self._returns, self._lengths = res
         return FinishedEpisodes(ret, length, env, step, term)
 
@@ -508,7 +521,9 @@ class EpisodeTracker:
                 f"{_fmt(length.shape)}; both must be (num_envs,)"
             )
         if length.dtype.kind not in "iu" or np.any(length < 0) or not np.all(np.isfinite(ret)):
-            raise InputError("state['lengths'] must be non-negative integers and state['returns'] finite")
+            raise InputError(
+                "state['lengths'] must be non-negative integers and state['returns'] finite"
+            )
         obj = cls(ret.size)
         obj._returns, obj._lengths = ret.copy(), length.astype(np.int64)
         return obj

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from typing import Callable, Optional
+from typing import Callable
 
 
 @dataclass
@@ -22,8 +22,8 @@ class Case:
     refs: dict[str, Callable[[], object]] = field(default_factory=dict)
     bytes_moved: int = 0
     fresh_out_bytes: int = 0
-    run_out: Optional[Callable[[], object]] = None
+    run_out: Callable[[], object] | None = None
 
 
-def main(argv: Optional[list[str]] = None) -> int:
+def main(argv: list[str] | None = None) -> int:
     raise SystemExit("rollscan bench: harness not built yet")
