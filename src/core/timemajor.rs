@@ -130,8 +130,7 @@ impl<'a, F: Real> Steps<'a, F> {
     }
 }
 
-/// Discounted returns: `x = r (+ gamma * V'_t at an end or the last row)`,
-/// `c = gamma * (1 - end)`.
+/// Discounted returns: `G_t = r_t + gamma * X_t` (module docs for `X_t`).
 struct ReturnsRule {
     gamma: f64,
 }
@@ -139,23 +138,33 @@ struct ReturnsRule {
 impl StepRule for ReturnsRule {
     const VALUES: bool = false;
     #[inline]
-    fn terms(&self, row: &Row<'_>, x: &mut [f64], c: &mut [f64], _aux: &mut [f64]) {
+    fn row(&self, row: &Row<'_>, y: &mut [f64], carry: &mut [f64], _aux: &mut [f64]) {
         let gamma = self.gamma;
-        for j in 0..x.len() {
-            let end = row.te[j] || row.tr[j] || row.last;
-            if end {
-                // Only the last row reaches here without an end flag or
-                // next_values (validated), and then V'_t is the bootstrap.
-                x[j] += gamma * row.v_prime(j);
-                c[j] = 0.0;
+        // The value a cut step (or the last row) bootstraps from: next_values,
+        // else the bootstrap (validation leaves only the last row for it).
+        let fix = row.next_values.unwrap_or(row.values_below);
+        for ((((y, &te), &tr), &fv), cy) in y
+            .iter_mut()
+            .zip(row.te)
+            .zip(row.tr)
+            .zip(fix)
+            .zip(carry.iter_mut())
+        {
+            let xv = if te {
+                0.0
+            } else if tr || row.last {
+                fv
             } else {
-                c[j] = gamma;
-            }
+                *cy
+            };
+            let g = *y + gamma * xv;
+            *y = g;
+            *cy = g;
         }
     }
 }
 
-/// GAE: `x = delta_t`, `c = gamma * lam * (1 - end)`.
+/// GAE: `A_t = delta_t + gamma * lam * (1 - end_t) * A_{t+1}`.
 struct GaeRule {
     gamma: f64,
     lam: f64,
@@ -164,12 +173,22 @@ struct GaeRule {
 impl StepRule for GaeRule {
     const VALUES: bool = true;
     #[inline]
-    fn terms(&self, row: &Row<'_>, x: &mut [f64], c: &mut [f64], _aux: &mut [f64]) {
+    fn row(&self, row: &Row<'_>, y: &mut [f64], carry: &mut [f64], _aux: &mut [f64]) {
         let (gamma, gl) = (self.gamma, self.gamma * self.lam);
-        for j in 0..x.len() {
-            let vnext = row.v_prime(j);
-            x[j] = x[j] + gamma * vnext - row.values[j];
-            c[j] = if row.te[j] || row.tr[j] { 0.0 } else { gl };
+        let vnext = row.next_values.unwrap_or(row.values_below);
+        for (((((y, &te), &tr), &v), &vn), cy) in y
+            .iter_mut()
+            .zip(row.te)
+            .zip(row.tr)
+            .zip(row.values)
+            .zip(vnext)
+            .zip(carry.iter_mut())
+        {
+            let vp = if te { 0.0 } else { vn };
+            let d = *y + gamma * vp - v;
+            let a = if te || tr { d } else { d + gl * *cy };
+            *y = a;
+            *cy = a;
         }
     }
 }
@@ -294,35 +313,24 @@ pub(crate) struct Row<'s> {
     pub te: &'s [bool],
     /// See `te`.
     pub tr: &'s [bool],
-    /// `y_{t+1}`: the recurrence's value at the row below (0 below the last row).
-    pub y_below: &'s [f64],
     /// The extra per-step inputs of the rule, this row.
     pub extra: [&'s [f64]; MAX_EXTRA],
 }
 
-impl Row<'_> {
-    /// The bootstrap rule `V'_t` of the module docs for stream `j`.
-    #[inline(always)]
-    pub fn v_prime(&self, j: usize) -> f64 {
-        if self.te[j] {
-            0.0
-        } else if let Some(nv) = self.next_values {
-            nv[j]
-        } else {
-            self.values_below[j]
-        }
-    }
-}
-
-/// How one step feeds the reverse recurrence `y_t = x_t + c_t * y_{t+1}`
-/// of a block of streams. The tile loop (gathering, carries, tiling,
-/// parallel split, storing) is shared; a rule only builds the per-step terms.
+/// One row of a reverse recurrence over a block of streams. The tile loop
+/// (gathering, carries, tiling, parallel split, storing) is shared; a rule
+/// only advances one row, in one branch-free pass over the `w` independent
+/// streams so the loop vectorises.
+///
+/// The bootstrap rule `V'_t` reads `0` where `te`, else
+/// `row.next_values.unwrap_or(row.values_below)`.
 pub(crate) trait StepRule: Sync {
     /// Whether `values` are gathered (and `Row::values*` filled).
     const VALUES: bool;
-    /// Fill `x` (holding `r_t` on entry) and `c` for one row; optionally
-    /// write a per-step by-product into `aux` (stored with [`Store::Aux`]).
-    fn terms(&self, row: &Row<'_>, x: &mut [f64], c: &mut [f64], aux: &mut [f64]);
+    /// Advance one row: `y` holds `r_t` on entry and `y_t` on exit; `carry`
+    /// holds `y_{t+1}` on entry (0 below the last row) and must hold `y_t` on
+    /// exit. A per-step by-product may go to `aux` (stored with [`Store::Aux`]).
+    fn row(&self, row: &Row<'_>, y: &mut [f64], carry: &mut [f64], aux: &mut [f64]);
 }
 
 /// What an output array receives.
@@ -415,7 +423,6 @@ fn run_block<F: Real, R: StepRule>(
     let rows_per_tile = (TILE / w).max(1);
     let cap = rows_per_tile * w;
     let mut xs = vec![0.0f64; cap];
-    let mut cs = vec![0.0f64; cap];
     let mut vs = vec![0.0f64; if use_v { cap } else { 0 }];
     let mut nvs = vec![0.0f64; if nv.is_some() { cap } else { 0 }];
     let mut exs: Vec<Vec<f64>> = ex.iter().map(|_| vec![0.0f64; cap]).collect();
@@ -472,22 +479,14 @@ fn run_block<F: Real, R: StepRule>(
                 },
                 te: &tes[row.clone()],
                 tr: &trs[row.clone()],
-                y_below: &carry_y,
                 extra: extra_rows,
             };
-            let x = &mut xs[row.clone()];
-            let c = &mut cs[row.clone()];
             let a: &mut [f64] = if use_aux {
                 &mut aux[row.clone()]
             } else {
                 &mut []
             };
-            rule.terms(&inputs, x, c, a);
-            for j in 0..w {
-                let y = x[j] + c[j] * carry_y[j];
-                x[j] = y;
-                carry_y[j] = y;
-            }
+            rule.row(&inputs, &mut xs[row.clone()], &mut carry_y, a);
         }
         if use_v {
             carry_v.copy_from_slice(&vs[..w]);

@@ -55,7 +55,7 @@ fn cap(x: f64, bar: f64) -> f64 {
 impl StepRule for VtraceRule {
     const VALUES: bool = true;
     #[inline]
-    fn terms(&self, row: &Row<'_>, x: &mut [f64], c: &mut [f64], aux: &mut [f64]) {
+    fn row(&self, row: &Row<'_>, y: &mut [f64], carry: &mut [f64], aux: &mut [f64]) {
         let VtraceParams {
             gamma,
             lam,
@@ -63,22 +63,26 @@ impl StepRule for VtraceRule {
             c_bar,
         } = self.p;
         let (blp, tlp) = (row.extra[0], row.extra[1]);
-        for j in 0..x.len() {
+        let vn = row.next_values.unwrap_or(row.values_below);
+        let last = row.last;
+        for j in 0..y.len() {
             let ratio = (tlp[j] - blp[j]).exp();
             let rho = cap(ratio, rho_bar);
             let cs = lam * cap(ratio, c_bar);
-            let end = row.te[j] || row.tr[j];
-            let vp = row.v_prime(j);
-            let v = row.values[j];
-            let r = x[j];
-            let vnext = if end || row.last {
+            let (te, end) = (row.te[j], row.te[j] || row.tr[j]);
+            let vp = if te { 0.0 } else { vn[j] };
+            let (r, v, below) = (y[j], row.values[j], carry[j]);
+            // vs_{t+1} inside an episode, V'_t at an end or the last row.
+            let vnext = if end || last {
                 vp
             } else {
-                row.values_below[j] + row.y_below[j]
+                row.values_below[j] + below
             };
             aux[j] = rho * (r + gamma * vnext - v);
-            x[j] = rho * (r + gamma * vp - v);
-            c[j] = if end { 0.0 } else { gamma * cs };
+            let d = rho * (r + gamma * vp - v);
+            let a = if end { d } else { d + gamma * cs * below };
+            y[j] = a;
+            carry[j] = a;
         }
     }
 }
