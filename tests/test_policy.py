@@ -707,3 +707,29 @@ def test_episode_tracker_long_episode_state_and_errors():
         tr.update(np.ones((3, 2)), None, np.zeros((2, 2), bool))
     with pytest.raises(InputError, match=r"rewards\[1, 0\]"):
         tr.update(np.array([[0.0, 0.0], [np.nan, 0.0]]), None)
+
+
+# --------------------------------------------------------------------------
+# Benchmark references compute the same thing
+# --------------------------------------------------------------------------
+
+
+def test_bench_references_agree():
+    # The NumPy references of rollscan/bench/policy.py must compute what the
+    # kernels compute, or the timings compare different work.
+    from rollscan.bench import policy as bench
+
+    rng = np.random.default_rng(13)
+    blp, tlp, r, v, _, term, _, boot = rollout(rng, 50, 4)
+    want = vtrace(blp, tlp, r, v, term, gamma=0.99, bootstrap=boot)
+    got = bench.numpy_vtrace(blp, tlp, r, v, term, boot, 0.99, 1.0, 1.0, 1.0)
+    np.testing.assert_allclose(got[0], want[0], rtol=1e-12, atol=1e-12)
+    np.testing.assert_allclose(got[1], want[1], rtol=1e-12, atol=1e-12)
+    new, old, adv = surrogate_inputs(rng, (300,))
+    res = clipped_surrogate(new, old, adv, clip=0.2)
+    loss, grad, kl, frac, rmean, rmax = bench.numpy_surrogate(new, old, adv, 0.2)
+    assert res.loss == pytest.approx(loss, rel=1e-12)
+    np.testing.assert_allclose(res.grad, grad, rtol=1e-12, atol=1e-15)
+    assert (res.approx_kl, res.clip_fraction) == pytest.approx((kl, frac), rel=1e-12)
+    assert (res.ratio_mean, res.ratio_max) == pytest.approx((rmean, rmax), rel=1e-12)
+    assert len(bench.cases(quick=True)) >= 2
