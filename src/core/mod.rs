@@ -11,6 +11,7 @@
 //!   offending index, never by panicking.
 
 pub mod error;
+pub mod fastmath;
 pub mod float;
 pub mod par;
 pub mod policy;

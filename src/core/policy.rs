@@ -19,9 +19,10 @@
 //! count.
 
 use super::error::{At, CoreError, CoreResult};
+use super::fastmath;
 use super::float::Real;
 use super::par::Par;
-use ndarray::{ArrayView1, ArrayViewD, ArrayViewMutD, Axis, IxDyn, Zip};
+use ndarray::{ArrayView1, ArrayViewD, ArrayViewMutD, Axis, IxDyn};
 
 /// Elements per reduction block.
 const BLOCK: usize = 1 << 14;
@@ -175,71 +176,79 @@ pub fn clipped_surrogate<F: Real>(
             Some(_) => CoreError::input("mask", "selects no element: the mean is undefined"),
         });
     }
-    let inv_n = 1.0 / count as f64;
-    let (lo, hi) = (1.0 - clip, 1.0 + clip);
-
-    let one = |g: &mut F, nl: &F, ol: &F, ad: &F, sel: bool| -> Partial {
-        if !sel {
-            *g = F::from_f64(0.0);
-            return Partial::ZERO;
-        }
-        let log_r = nl.to_f64() - ol.to_f64();
-        let r = log_r.exp();
-        let a = ad.to_f64();
-        let s1 = r * a;
-        let s2 = r.clamp(lo, hi) * a;
-        // Ties (r inside the range, or A = 0) take the unclipped branch; a
-        // NaN fails `s2 < s1` and so reaches the gradient.
-        let (obj, d) = if s2 < s1 {
-            (s2, 0.0)
-        } else {
-            (s1, -s1 * inv_n)
-        };
-        *g = F::from_f64(d);
-        Partial {
-            obj,
-            kl: (r - 1.0) - log_r,
-            ratio: r,
-            ratio_max: r,
-            clipped: if (r - 1.0).abs() > clip { 1.0 } else { 0.0 },
-        }
+    let c = Consts {
+        lo: 1.0 - clip,
+        hi: 1.0 + clip,
+        clip,
+        inv_n: 1.0 / count as f64,
     };
+    let inv_n = c.inv_n;
 
     // Each block owns its slice of `grad`, so the blocks can run in parallel.
     let mut grads = Vec::with_capacity(blocks.len());
     let mut rest = grad.view_mut();
-    let mut at = 0;
     for &(a, b) in &blocks {
         let (head, tail) = rest.split_at(Axis(0), b - a);
-        debug_assert_eq!(a, at);
-        at = b;
         grads.push(((a, b), head));
         rest = tail;
     }
     let parts = par.map(grads, |((a, b), mut g)| {
+        let sl = |x: &ArrayViewD<'_, F>| {
+            x.slice_axis(Axis(0), (a..b).into())
+                .iter()
+                .copied()
+                .collect::<Vec<F>>()
+        };
         let (nl, ol, ad) = (
             new_log_prob.slice_axis(Axis(0), (a..b).into()),
             old_log_prob.slice_axis(Axis(0), (a..b).into()),
             advantages.slice_axis(Axis(0), (a..b).into()),
         );
-        let mut acc = Partial::ZERO;
-        match &mask {
-            None => Zip::from(&mut g)
-                .and(&nl)
-                .and(&ol)
-                .and(&ad)
-                .for_each(|g, nl, ol, ad| acc = acc.add(one(g, nl, ol, ad, true))),
-            Some(m) => {
-                let m = m.slice_axis(Axis(0), (a..b).into());
-                Zip::from(&mut g)
-                    .and(&nl)
-                    .and(&ol)
-                    .and(&ad)
-                    .and(&m)
-                    .for_each(|g, nl, ol, ad, &k| acc = acc.add(one(g, nl, ol, ad, k)))
+        let m = mask.as_ref().map(|m| m.slice_axis(Axis(0), (a..b).into()));
+        // Contiguous blocks are read in place; others are copied into block
+        // scratch in logical order, so both give the same bits.
+        let (nl_o, ol_o, ad_o);
+        let nl_s = match nl.as_slice() {
+            Some(x) => x,
+            None => {
+                nl_o = sl(&new_log_prob);
+                &nl_o[..]
+            }
+        };
+        let ol_s = match ol.as_slice() {
+            Some(x) => x,
+            None => {
+                ol_o = sl(&old_log_prob);
+                &ol_o[..]
+            }
+        };
+        let ad_s = match ad.as_slice() {
+            Some(x) => x,
+            None => {
+                ad_o = sl(&advantages);
+                &ad_o[..]
+            }
+        };
+        let m_o;
+        let m_s = match &m {
+            None => None,
+            Some(v) => match v.as_slice() {
+                Some(x) => Some(x),
+                None => {
+                    m_o = v.iter().copied().collect::<Vec<bool>>();
+                    Some(&m_o[..])
+                }
+            },
+        };
+        match g.as_slice_mut() {
+            Some(gs) => block_dispatch(nl_s, ol_s, ad_s, m_s, gs, &c),
+            None => {
+                let mut gs = vec![F::from_f64(0.0); nl_s.len()];
+                let p = block_dispatch(nl_s, ol_s, ad_s, m_s, &mut gs, &c);
+                g.iter_mut().zip(gs).for_each(|(o, v)| *o = v);
+                p
             }
         }
-        acc
     });
     let tot = parts.into_iter().fold(Partial::ZERO, Partial::add);
     Ok(Surrogate {
@@ -250,6 +259,150 @@ pub fn clipped_surrogate<F: Real>(
         ratio_max: tot.ratio_max,
         count,
     })
+}
+
+/// The per-call constants of the block kernel.
+struct Consts {
+    lo: f64,
+    hi: f64,
+    clip: f64,
+    inv_n: f64,
+}
+
+/// Accumulator lanes of the block kernel: independent partial sums let the
+/// loop vectorise; lanes are combined in a fixed order.
+const LANES: usize = 8;
+
+/// One element from its log-ratio and ratio: `(grad, objective, kl term,
+/// ratio, clipped)`, zeros where not selected.
+#[inline(always)]
+fn element(log_r: f64, r: f64, a: f64, sel: bool, c: &Consts) -> (f64, f64, f64, f64, f64) {
+    let s1 = r * a;
+    // Explicit comparisons (not `clamp`, whose bounds assertion would keep
+    // the loop from vectorising); a NaN passes through.
+    #[allow(clippy::manual_clamp)]
+    let rc = if r < c.lo {
+        c.lo
+    } else if r > c.hi {
+        c.hi
+    } else {
+        r
+    };
+    let s2 = rc * a;
+    // Ties (r inside the range, or A = 0) take the unclipped branch; a NaN
+    // fails `s2 < s1` and so reaches the gradient.
+    let clipped_min = s2 < s1;
+    let obj = if clipped_min { s2 } else { s1 };
+    let d = if clipped_min { 0.0 } else { -s1 * c.inv_n };
+    let kl = (r - 1.0) - log_r;
+    let cf = if (r - 1.0).abs() > c.clip { 1.0 } else { 0.0 };
+    if sel {
+        (d, obj, kl, r, cf)
+    } else {
+        (0.0, 0.0, 0.0, 0.0, 0.0)
+    }
+}
+
+/// [`block_kernel`], in its AVX2 copy when the CPU allows (same bits).
+fn block_dispatch<F: Real>(
+    nl: &[F],
+    ol: &[F],
+    ad: &[F],
+    m: Option<&[bool]>,
+    g: &mut [F],
+    c: &Consts,
+) -> Partial {
+    #[cfg(target_arch = "x86_64")]
+    {
+        #[target_feature(enable = "avx2")]
+        fn avx2<F: Real>(
+            nl: &[F],
+            ol: &[F],
+            ad: &[F],
+            m: Option<&[bool]>,
+            g: &mut [F],
+            c: &Consts,
+        ) -> Partial {
+            block_kernel(nl, ol, ad, m, g, c)
+        }
+        if fastmath::wide_ok() {
+            // SAFETY: `avx2` only requires the CPU to support AVX2, which
+            // `wide_ok` has just confirmed at run time.
+            return unsafe { avx2(nl, ol, ad, m, g, c) };
+        }
+    }
+    block_kernel(nl, ol, ad, m, g, c)
+}
+
+/// One block of contiguous elements (logical order): writes `g`, returns the
+/// block's sums. Element `i` goes to lane `i % LANES`.
+#[inline(always)]
+fn block_kernel<F: Real>(
+    nl: &[F],
+    ol: &[F],
+    ad: &[F],
+    m: Option<&[bool]>,
+    g: &mut [F],
+    c: &Consts,
+) -> Partial {
+    let n = g.len();
+    let (nl, ol, ad) = (&nl[..n], &ol[..n], &ad[..n]);
+    let mut obj = [0.0f64; LANES];
+    let mut kl = [0.0f64; LANES];
+    let mut ratio = [0.0f64; LANES];
+    let mut clipped = [0.0f64; LANES];
+    let mut rmax = [f64::NEG_INFINITY; LANES];
+    // Groups of LANES independent elements (a fixed inner loop the compiler
+    // unrolls and vectorises), then the tail; element i always lands in
+    // lane i % LANES.
+    let groups = n.div_ceil(LANES);
+    for gi in 0..groups {
+        let base = gi * LANES;
+        let len = LANES.min(n - base);
+        let mut lr = [0.0f64; LANES];
+        let mut adv = [0.0f64; LANES];
+        let mut sel = [false; LANES];
+        for l in 0..len {
+            lr[l] = nl[base + l].to_f64() - ol[base + l].to_f64();
+            adv[l] = ad[base + l].to_f64();
+            sel[l] = m.is_none_or(|m| m[base + l]);
+        }
+        // The exponentials alone: a plain loop of arithmetic that vectorises.
+        let mut ratio_l = [0.0f64; LANES];
+        for l in 0..LANES {
+            ratio_l[l] = fastmath::exp(lr[l]);
+        }
+        let mut d = [0.0f64; LANES];
+        for l in 0..LANES {
+            let (dl, o, k, r, cf) = element(lr[l], ratio_l[l], adv[l], sel[l], c);
+            d[l] = dl;
+            obj[l] += o;
+            kl[l] += k;
+            ratio[l] += r;
+            clipped[l] += cf;
+            let rm = if sel[l] { r } else { f64::NEG_INFINITY };
+            // Sticky NaN: once a lane's max is NaN it stays NaN.
+            rmax[l] = if rm > rmax[l] || rm.is_nan() {
+                rm
+            } else {
+                rmax[l]
+            };
+        }
+        for l in 0..len {
+            g[base + l] = F::from_f64(d[l]);
+        }
+    }
+    let mut p = Partial::ZERO;
+    for l in 0..LANES {
+        p = p.add(Partial {
+            obj: obj[l],
+            kl: kl[l],
+            ratio: ratio[l],
+            ratio_max: rmax[l],
+            clipped: clipped[l],
+        });
+    }
+    p
 }
 
 /// The first non-finite element in logical row-major order.
@@ -387,6 +540,12 @@ mod tests {
         let (s1, g1) = run(&nl, &ol, &a, Some(&m), clip, Par::Seq);
         assert_eq!(s, s1);
         assert_eq!(g, g1);
+        // The AVX2 path (when the CPU has it) and the baseline path agree bitwise.
+        fastmath::set_wide_off(true);
+        let (s2, g2) = run(&nl, &ol, &a, Some(&m), clip, Par::Seq);
+        fastmath::set_wide_off(false);
+        assert_eq!(s, s2);
+        assert_eq!(g, g2);
     }
 
     #[test]
@@ -407,7 +566,7 @@ mod tests {
         )
         .unwrap();
         assert_eq!(s.clip_fraction, 0.5);
-        assert_eq!(s.ratio_max, 0.5f64.exp());
+        assert!((s.ratio_max - 0.5f64.exp()).abs() < 4.0 * f64::EPSILON);
         // Both clipped elements are clipped in the direction that zeroes the gradient.
         assert_eq!(g[1], 0.0);
         assert_eq!(g[2], 0.0);

@@ -18,6 +18,7 @@
 //! depends on the tiling or on the thread count.
 
 use super::error::{check_unit, At, CoreError, CoreResult};
+use super::fastmath;
 use super::float::Real;
 use super::par::Par;
 use super::stats;
@@ -137,7 +138,7 @@ struct ReturnsRule {
 
 impl StepRule for ReturnsRule {
     const VALUES: bool = false;
-    #[inline]
+    #[inline(always)]
     fn row(&self, row: &Row<'_>, y: &mut [f64], carry: &mut [f64], _aux: &mut [f64]) {
         let gamma = self.gamma;
         // The value a cut step (or the last row) bootstraps from: next_values,
@@ -172,7 +173,7 @@ struct GaeRule {
 
 impl StepRule for GaeRule {
     const VALUES: bool = true;
-    #[inline]
+    #[inline(always)]
     fn row(&self, row: &Row<'_>, y: &mut [f64], carry: &mut [f64], _aux: &mut [f64]) {
         let (gamma, gl) = (self.gamma, self.gamma * self.lam);
         let vnext = row.next_values.unwrap_or(row.values_below);
@@ -432,7 +433,6 @@ fn run_block<F: Real, R: StepRule>(
     // y and V at the row just below the current tile.
     let mut carry_y = vec![0.0f64; w];
     let mut carry_v = boot;
-    let empty: &[f64] = &[];
 
     let mut t1 = t_len;
     while t1 > 0 {
@@ -455,39 +455,21 @@ fn run_block<F: Real, R: StepRule>(
         gather_flags(term.as_ref().map(|a| a.slice(rs)), &mut tes[..n]);
         gather_flags(trunc.as_ref().map(|a| a.slice(rs)), &mut trs[..n]);
 
-        for i in (0..rows).rev() {
-            let row = i * w..(i + 1) * w;
-            let mut extra_rows = [empty; MAX_EXTRA];
-            for (k, buf) in exs.iter().enumerate() {
-                extra_rows[k] = &buf[row.clone()];
-            }
-            let (values, values_below): (&[f64], &[f64]) = if !use_v {
-                (empty, &carry_v)
-            } else if i + 1 < rows {
-                (&vs[row.clone()], &vs[(i + 1) * w..(i + 2) * w])
-            } else {
-                (&vs[row.clone()], &carry_v)
-            };
-            let inputs = Row {
-                last: t0 + i + 1 == t_len,
-                values,
-                values_below,
-                next_values: if nvs.is_empty() {
-                    None
-                } else {
-                    Some(&nvs[row.clone()])
-                },
-                te: &tes[row.clone()],
-                tr: &trs[row.clone()],
-                extra: extra_rows,
-            };
-            let a: &mut [f64] = if use_aux {
-                &mut aux[row.clone()]
-            } else {
-                &mut []
-            };
-            rule.row(&inputs, &mut xs[row.clone()], &mut carry_y, a);
-        }
+        let tile = Tile {
+            rows,
+            w,
+            last_row: t0 + rows == t_len,
+            xs: &mut xs[..n],
+            vs: if use_v { &vs[..n] } else { &[] },
+            nvs: if nvs.is_empty() { &[] } else { &nvs[..n] },
+            exs: &exs,
+            aux: if use_aux { &mut aux[..n] } else { &mut [] },
+            tes: &tes[..n],
+            trs: &trs[..n],
+            carry_y: &mut carry_y,
+            carry_v: &carry_v,
+        };
+        tile_rows_dispatch(rule, tile);
         if use_v {
             carry_v.copy_from_slice(&vs[..w]);
         }
@@ -502,6 +484,80 @@ fn run_block<F: Real, R: StepRule>(
         }
         t1 = t0;
     }
+}
+
+/// The scratch of one tile (`rows x w`, row-major) and the carries below it.
+struct Tile<'s> {
+    rows: usize,
+    w: usize,
+    /// The tile's bottom row is the buffer's last row.
+    last_row: bool,
+    xs: &'s mut [f64],
+    vs: &'s [f64],
+    nvs: &'s [f64],
+    exs: &'s [Vec<f64>],
+    aux: &'s mut [f64],
+    tes: &'s [bool],
+    trs: &'s [bool],
+    carry_y: &'s mut [f64],
+    carry_v: &'s [f64],
+}
+
+/// Run the rule over the rows of one tile, bottom-up.
+#[inline(always)]
+fn tile_rows<R: StepRule>(rule: &R, t: Tile<'_>) {
+    let w = t.w;
+    let empty: &[f64] = &[];
+    for i in (0..t.rows).rev() {
+        let row = i * w..(i + 1) * w;
+        let mut extra = [empty; MAX_EXTRA];
+        for (k, buf) in t.exs.iter().enumerate() {
+            extra[k] = &buf[row.clone()];
+        }
+        let (values, values_below): (&[f64], &[f64]) = if !R::VALUES {
+            (empty, t.carry_v)
+        } else if i + 1 < t.rows {
+            (&t.vs[row.clone()], &t.vs[(i + 1) * w..(i + 2) * w])
+        } else {
+            (&t.vs[row.clone()], t.carry_v)
+        };
+        let inputs = Row {
+            last: t.last_row && i + 1 == t.rows,
+            values,
+            values_below,
+            next_values: if t.nvs.is_empty() {
+                None
+            } else {
+                Some(&t.nvs[row.clone()])
+            },
+            te: &t.tes[row.clone()],
+            tr: &t.trs[row.clone()],
+            extra,
+        };
+        let a: &mut [f64] = if t.aux.is_empty() {
+            &mut []
+        } else {
+            &mut t.aux[row.clone()]
+        };
+        rule.row(&inputs, &mut t.xs[row], t.carry_y, a);
+    }
+}
+
+/// [`tile_rows`], in its AVX2 copy when the CPU allows (same bits).
+fn tile_rows_dispatch<R: StepRule>(rule: &R, t: Tile<'_>) {
+    #[cfg(target_arch = "x86_64")]
+    {
+        #[target_feature(enable = "avx2")]
+        fn avx2<R: StepRule>(rule: &R, t: Tile<'_>) {
+            tile_rows(rule, t)
+        }
+        if fastmath::wide_ok() {
+            // SAFETY: `avx2` only requires the CPU to support AVX2, which
+            // `wide_ok` has just confirmed at run time.
+            return unsafe { avx2(rule, t) };
+        }
+    }
+    tile_rows(rule, t)
 }
 
 /// Copy a `[rows, w]` view into row-major `f64` scratch.
