@@ -7,7 +7,6 @@ from numpy.typing import ArrayLike, NDArray
 
 __version__: str
 
-_Float = np.float32 | np.float64
 _Out = NDArray[Any] | None
 _OutPair = tuple[NDArray[Any], NDArray[Any]] | None
 

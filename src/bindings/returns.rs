@@ -132,6 +132,22 @@ impl<'py, F: Element + Real> TimeMajorArgs<'py, F> {
     pub fn shape(&self) -> Vec<usize> {
         self.rewards.shape().to_vec()
     }
+
+    /// The checks that still apply when there are no elements. Zero-size
+    /// arrays are never borrowed as views: NumPy gives them zero strides,
+    /// which ndarray's debug checks reject.
+    pub fn check_empty(&self, coefs: &[(&'static str, f64)]) -> PyResult<()> {
+        for &(name, x) in coefs {
+            crate::core::error::check_unit(name, x).map_err(core_err)?;
+        }
+        if self.bootstrap.is_some() && self.next_values.is_some() {
+            return Err(core_err(CoreError::input(
+                "bootstrap",
+                "is not allowed together with next_values (its last row already carries the bootstrap)",
+            )));
+        }
+        Ok(())
+    }
 }
 
 /// Read-only borrows of the arguments, alive for the kernel call.
@@ -368,6 +384,10 @@ fn returns_impl<'py, F: Element + Real + Default>(
 ) -> PyResult<Bound<'py, PyAny>> {
     let shape = a.shape();
     let out = out_array::<F>(py, "out", some(out), &shape)?;
+    if shape.contains(&0) {
+        a.check_empty(&[("gamma", gamma)])?;
+        return Ok(out.into_any());
+    }
     {
         let b = Borrowed::new(&a)?;
         let mut ow = out.try_readwrite().map_err(|e| overlap_err("out", e))?;
@@ -491,6 +511,10 @@ fn gae_impl<'py, F: Element + Real + Default>(
     let (o1, o2) = out_pair(some(out))?;
     let adv = out_array::<F>(py, "out[0]", o1.as_ref(), &shape)?;
     let ret = out_array::<F>(py, "out[1]", o2.as_ref(), &shape)?;
+    if shape.contains(&0) {
+        a.check_empty(&[("gamma", gamma), ("lam", lam)])?;
+        return PyTuple::new(py, [adv.into_any(), ret.into_any()]);
+    }
     {
         let b = Borrowed::new(&a)?;
         let mut aw = adv.try_readwrite().map_err(|e| overlap_err("out[0]", e))?;
@@ -613,6 +637,13 @@ fn normalize_impl<'py, F: Element + Real>(
                 fmt_shape(&shape)
             )));
         }
+    }
+    if shape.contains(&0) {
+        // Nothing to normalise; zero-size arrays are never borrowed as views.
+        return match some(out) {
+            Some(o) => Ok(out_array::<F>(py, "out", Some(o), &shape)?.into_any()),
+            None => Ok(out_array::<F>(py, "out", None, &shape)?.into_any()),
+        };
     }
     let mg = mask.as_ref().map(|m| m.try_readonly()).transpose()?;
     let mv = mg.as_ref().map(|m| m.as_array());

@@ -12,6 +12,7 @@
 
 pub mod error;
 pub mod fastmath;
+pub mod finite;
 pub mod float;
 pub mod par;
 pub mod policy;

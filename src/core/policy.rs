@@ -294,7 +294,10 @@ fn element(log_r: f64, r: f64, a: f64, sel: bool, c: &Consts) -> (f64, f64, f64,
     let clipped_min = s2 < s1;
     let obj = if clipped_min { s2 } else { s1 };
     let d = if clipped_min { 0.0 } else { -s1 * c.inv_n };
-    let kl = (r - 1.0) - log_r;
+    // (r - 1) - log r >= 0 exactly; only rounding (r near 1) can push it
+    // below, so clip that noise (a NaN passes).
+    let kl_t = (r - 1.0) - log_r;
+    let kl = if kl_t < 0.0 { 0.0 } else { kl_t };
     let cf = if (r - 1.0).abs() > c.clip { 1.0 } else { 0.0 };
     if sel {
         (d, obj, kl, r, cf)

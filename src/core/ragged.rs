@@ -26,7 +26,7 @@
 use super::error::{check_unit, At, CoreError, CoreResult};
 use super::float::Real;
 use super::par::Par;
-use super::scan::{scan_rev_inplace, Carry};
+use super::scan::{affine_rev, scan_rev_with, Carry};
 use ndarray::{s, ArrayView1, ArrayViewMut1};
 
 /// Steps per block of the parallel scan.
@@ -180,32 +180,57 @@ impl<F: Real> Inputs<'_, '_, '_, F> {
             let end = p.offsets[e + 1];
             let stop = end.min(s1);
             let (tv, ta) = p.tail(e);
+            let (xs, cs) = (&mut x[s - s0..stop - s0], &mut c[s - s0..stop - s0]);
+            let rs = self.r.slice(s![s..stop]);
             match self.kind {
                 Kind::Returns { gamma } => {
-                    for t in s..stop {
-                        let k = t - s0;
-                        x[k] = self.r[t].to_f64();
-                        c[k] = gamma;
+                    match rs.as_slice() {
+                        Some(sl) => xs.iter_mut().zip(sl).for_each(|(x, r)| *x = r.to_f64()),
+                        None => xs
+                            .iter_mut()
+                            .zip(rs.iter())
+                            .for_each(|(x, r)| *x = r.to_f64()),
                     }
+                    cs.fill(gamma);
                     if stop == end {
-                        let k = end - 1 - s0;
-                        x[k] += gamma * tv;
-                        c[k] = 0.0;
+                        let k = stop - s - 1;
+                        xs[k] += gamma * tv;
+                        cs[k] = 0.0;
                     }
                 }
                 Kind::Gae { gamma, lam } => {
-                    let v = self.v.as_ref().expect("gae has values");
+                    let Some(v) = self.v.as_ref() else { return };
                     let gl = gamma * lam;
-                    for t in s..stop {
-                        let k = t - s0;
-                        let vnext = if t + 1 < end { v[t + 1].to_f64() } else { tv };
-                        x[k] = self.r[t].to_f64() + gamma * vnext - v[t].to_f64();
-                        c[k] = gl;
+                    // Steps whose successor lies inside the piece.
+                    let inner = stop.min(end - 1).max(s);
+                    let k_in = inner - s;
+                    let vt = v.slice(s![s..stop]);
+                    let vn = v.slice(s![s + 1..inner + 1]);
+                    match (rs.as_slice(), vt.as_slice(), vn.as_slice()) {
+                        (Some(r), Some(vt), Some(vn)) => {
+                            for ((((x, r), v), w), _) in
+                                xs.iter_mut().zip(r).zip(vt).zip(vn).zip(0..k_in)
+                            {
+                                *x = r.to_f64() + gamma * w.to_f64() - v.to_f64();
+                            }
+                        }
+                        _ => {
+                            for ((((x, r), v), w), _) in xs
+                                .iter_mut()
+                                .zip(rs.iter())
+                                .zip(vt.iter())
+                                .zip(vn.iter())
+                                .zip(0..k_in)
+                            {
+                                *x = r.to_f64() + gamma * w.to_f64() - v.to_f64();
+                            }
+                        }
                     }
+                    cs.fill(gl);
                     if stop == end {
-                        let k = end - 1 - s0;
-                        x[k] += gl * ta;
-                        c[k] = 0.0;
+                        let k = stop - s - 1;
+                        xs[k] = rs[k].to_f64() + gamma * tv - vt[k].to_f64() + gl * ta;
+                        cs[k] = 0.0;
                     }
                 }
             }
@@ -219,13 +244,9 @@ impl<F: Real> Inputs<'_, '_, '_, F> {
         let h1 = self.pieces.offsets[e + 1].min(s1);
         let n = h1 - s0;
         self.terms(s0, h1, &mut x[..n], &mut c[..n]);
-        let factor = if h1 == s1 {
-            c[..n].iter().product()
-        } else {
-            0.0
-        };
-        let head = scan_rev_inplace(&mut x[..n], &c[..n], 0.0);
-        Carry { head, factor }
+        // When the head piece ends inside the block its last c is 0, so the
+        // factor is 0 and the block does not depend on what follows.
+        affine_rev(&x[..n], &c[..n])
     }
 }
 
@@ -240,12 +261,18 @@ where
     }
     let nb = n.div_ceil(BLOCK);
     let bounds = |b: usize| (b * BLOCK, ((b + 1) * BLOCK).min(n));
+    // Per-worker scratch: x, c and the scan's products, one block each.
+    let init = || {
+        (
+            vec![0.0f64; BLOCK],
+            vec![0.0f64; BLOCK],
+            Vec::<f64>::with_capacity(BLOCK),
+        )
+    };
     // 1. Affine maps of every block but the first (its map is never needed).
-    let maps: Vec<Carry> = par.map((1..nb).collect(), |b| {
+    let maps: Vec<Carry> = par.map_init((1..nb).collect(), init, |(x, c, _), b| {
         let (s0, s1) = bounds(b);
-        let mut x = vec![0.0; s1 - s0];
-        let mut c = vec![0.0; s1 - s0];
-        inp.summary(s0, s1, &mut x, &mut c)
+        inp.summary(s0, s1, &mut x[..s1 - s0], &mut c[..s1 - s0])
     });
     // 2. Incoming carries, right to left. The last block ends a piece.
     let mut carry = vec![0.0f64; nb];
@@ -253,13 +280,12 @@ where
         carry[b] = maps[b].apply(carry[b + 1]);
     }
     // 3. Every block with its carry.
-    par.for_each((0..nb).collect(), |b| {
+    par.for_each_init((0..nb).collect(), init, |(x, c, p), b| {
         let (s0, s1) = bounds(b);
-        let mut x = vec![0.0; s1 - s0];
-        let mut c = vec![0.0; s1 - s0];
-        inp.terms(s0, s1, &mut x, &mut c);
-        scan_rev_inplace(&mut x, &c, carry[b]);
-        emit(s0, &x);
+        let (x, c) = (&mut x[..s1 - s0], &mut c[..s1 - s0]);
+        inp.terms(s0, s1, x, c);
+        scan_rev_with(x, c, carry[b], p);
+        emit(s0, x);
     });
 }
 
@@ -281,9 +307,10 @@ fn check_steps<F: Real>(
     name: &'static str,
     a: &ArrayView1<'_, F>,
     check_finite: bool,
+    par: Par,
 ) -> CoreResult<()> {
     if check_finite {
-        if let Some(i) = a.iter().position(|x| !x.finite()) {
+        if let Some(i) = super::finite::first_non_finite_1d(a, par) {
             return Err(CoreError::non_finite(name, At::Flat(i)));
         }
     }
@@ -316,7 +343,7 @@ pub fn discounted_returns<F: Real>(
     check_unit("gamma", gamma)?;
     check_len("out", out.len(), rewards.len())?;
     check_len("rewards", rewards.len(), pieces.steps())?;
-    check_steps("rewards", &rewards, check_finite)?;
+    check_steps("rewards", &rewards, check_finite, par)?;
     let inp = Inputs {
         r: rewards,
         v: None,
@@ -329,7 +356,10 @@ pub fn discounted_returns<F: Real>(
         .collect();
     blocked(&inp, par, |s0, y| {
         if let Ok(mut o) = outs[s0 / BLOCK].lock() {
-            o.iter_mut().zip(y).for_each(|(o, &y)| *o = F::from_f64(y));
+            match o.as_slice_mut() {
+                Some(d) => d.iter_mut().zip(y).for_each(|(o, &y)| *o = F::from_f64(y)),
+                None => o.iter_mut().zip(y).for_each(|(o, &y)| *o = F::from_f64(y)),
+            }
         }
     });
     Ok(())
@@ -358,8 +388,8 @@ pub fn gae<F: Real>(
     check_len("out[0]", adv.len(), rewards.len())?;
     check_len("out[1]", ret.len(), rewards.len())?;
     check_len("rewards", rewards.len(), pieces.steps())?;
-    check_steps("rewards", &rewards, check_finite)?;
-    check_steps("values", &values, check_finite)?;
+    check_steps("rewards", &rewards, check_finite, par)?;
+    check_steps("values", &values, check_finite, par)?;
     let inp = Inputs {
         r: rewards,
         v: Some(values),
@@ -407,7 +437,7 @@ pub fn episode_sums<F: Real>(
             "one sum per piece",
         ));
     }
-    check_steps("x", &x, check_finite)?;
+    check_steps("x", &x, check_finite, par)?;
     let sums: Vec<f64> = par.map((0..pieces.len()).collect(), |e| {
         let (a, b) = (pieces.offsets[e], pieces.offsets[e + 1]);
         x.slice(s![a..b])

@@ -140,9 +140,9 @@ impl StepRule for ReturnsRule {
     const VALUES: bool = false;
     #[inline(always)]
     fn row(&self, row: &Row<'_>, y: &mut [f64], carry: &mut [f64], _aux: &mut [f64]) {
-        let gamma = self.gamma;
-        // The value a cut step (or the last row) bootstraps from: next_values,
-        // else the bootstrap (validation leaves only the last row for it).
+        let (gamma, last) = (self.gamma, row.last);
+        // The value a cut step bootstraps from: next_values, else the
+        // bootstrap (validation leaves only the last row for it).
         let fix = row.next_values.unwrap_or(row.values_below);
         for ((((y, &te), &tr), &fv), cy) in y
             .iter_mut()
@@ -151,14 +151,11 @@ impl StepRule for ReturnsRule {
             .zip(fix)
             .zip(carry.iter_mut())
         {
-            let xv = if te {
-                0.0
-            } else if tr || row.last {
-                fv
-            } else {
-                *cy
-            };
-            let g = *y + gamma * xv;
+            // xv = 0 if te, else fv if (tr or last), else cy; as bit
+            // masks so the loop vectorises and NaN cannot cross an end.
+            let fix = mask(tr | last);
+            let xv = f64::from_bits((fv.to_bits() & fix) | (cy.to_bits() & !fix));
+            let g = *y + gamma * keep(xv, mask(!te));
             *y = g;
             *cy = g;
         }
@@ -185,9 +182,8 @@ impl StepRule for GaeRule {
             .zip(vnext)
             .zip(carry.iter_mut())
         {
-            let vp = if te { 0.0 } else { vn };
-            let d = *y + gamma * vp - v;
-            let a = if te || tr { d } else { d + gl * *cy };
+            let d = *y + gamma * keep(vn, mask(!te)) - v;
+            let a = d + keep(gl * *cy, mask(!(te | tr)));
             *y = a;
             *cy = a;
         }
@@ -560,34 +556,51 @@ fn tile_rows_dispatch<R: StepRule>(rule: &R, t: Tile<'_>) {
     tile_rows(rule, t)
 }
 
+/// All ones when `b`, else zero: a lane mask for [`keep`].
+#[inline(always)]
+fn mask(b: bool) -> u64 {
+    (b as u64).wrapping_neg()
+}
+
+/// `x` where the mask is set, `+0.0` elsewhere (a select that vectorises and
+/// never turns `0 * NaN` into NaN).
+#[inline(always)]
+fn keep(x: f64, m: u64) -> f64 {
+    f64::from_bits(x.to_bits() & m)
+}
+
 /// Copy a `[rows, w]` view into row-major `f64` scratch.
 fn gather<F: Real>(src: &ArrayView2<'_, F>, dst: &mut [f64]) {
-    let w = src.ncols();
-    match src.as_slice() {
-        Some(sl) => dst.iter_mut().zip(sl).for_each(|(d, s)| *d = s.to_f64()),
-        None => {
-            for (row, d) in src.rows().into_iter().zip(dst.chunks_mut(w.max(1))) {
-                d.iter_mut()
-                    .zip(row.iter())
-                    .for_each(|(d, s)| *d = s.to_f64());
-            }
+    let w = src.ncols().max(1);
+    if let Some(sl) = src.as_slice() {
+        dst.iter_mut().zip(sl).for_each(|(d, s)| *d = s.to_f64());
+        return;
+    }
+    for (row, d) in src.rows().into_iter().zip(dst.chunks_mut(w)) {
+        match row.as_slice() {
+            Some(sl) => d.iter_mut().zip(sl).for_each(|(d, s)| *d = s.to_f64()),
+            None => d
+                .iter_mut()
+                .zip(row.iter())
+                .for_each(|(d, s)| *d = s.to_f64()),
         }
     }
 }
 
 fn gather_flags(src: Option<ArrayView2<'_, bool>>, dst: &mut [bool]) {
-    match src {
-        None => dst.fill(false),
-        Some(src) => {
-            let w = src.ncols().max(1);
-            match src.as_slice() {
-                Some(sl) => dst.copy_from_slice(sl),
-                None => {
-                    for (row, d) in src.rows().into_iter().zip(dst.chunks_mut(w)) {
-                        d.iter_mut().zip(row.iter()).for_each(|(d, s)| *d = *s);
-                    }
-                }
-            }
+    let Some(src) = src else {
+        dst.fill(false);
+        return;
+    };
+    let w = src.ncols().max(1);
+    if let Some(sl) = src.as_slice() {
+        dst.copy_from_slice(sl);
+        return;
+    }
+    for (row, d) in src.rows().into_iter().zip(dst.chunks_mut(w)) {
+        match row.as_slice() {
+            Some(sl) => d.copy_from_slice(sl),
+            None => d.iter_mut().zip(row.iter()).for_each(|(d, s)| *d = *s),
         }
     }
 }
@@ -595,36 +608,39 @@ fn gather_flags(src: Option<ArrayView2<'_, bool>>, dst: &mut [bool]) {
 /// Store `y (+ add)` into a `[rows, w]` view, rounding once.
 fn scatter<F: Real>(y: &[f64], add: Option<&[f64]>, dst: &mut ArrayViewMut2<'_, F>) {
     let w = dst.ncols().max(1);
-    match (dst.as_slice_mut(), add) {
-        (Some(d), None) => d.iter_mut().zip(y).for_each(|(o, &y)| *o = F::from_f64(y)),
-        (Some(d), Some(a)) => d
+    let store = |d: &mut [F], y: &[f64], a: Option<&[f64]>| match a {
+        None => d.iter_mut().zip(y).for_each(|(o, &y)| *o = F::from_f64(y)),
+        Some(a) => d
             .iter_mut()
             .zip(y)
             .zip(a)
             .for_each(|((o, &y), &a)| *o = F::from_f64(y + a)),
-        (None, _) => {
-            for (i, mut row) in dst.rows_mut().into_iter().enumerate() {
-                let ys = &y[i * w..(i + 1) * w];
-                match add {
-                    None => Zip::from(&mut row)
-                        .and(ys)
-                        .for_each(|o, &y| *o = F::from_f64(y)),
-                    Some(a) => {
-                        let a = &a[i * w..(i + 1) * w];
-                        Zip::from(&mut row)
-                            .and(ys)
-                            .and(a)
-                            .for_each(|o, &y, &a| *o = F::from_f64(y + a))
-                    }
-                }
-            }
+    };
+    if let Some(d) = dst.as_slice_mut() {
+        store(d, y, add);
+        return;
+    }
+    for (i, mut row) in dst.rows_mut().into_iter().enumerate() {
+        let ys = &y[i * w..(i + 1) * w];
+        let a = add.map(|a| &a[i * w..(i + 1) * w]);
+        match row.as_slice_mut() {
+            Some(d) => store(d, ys, a),
+            None => match a {
+                None => Zip::from(&mut row)
+                    .and(ys)
+                    .for_each(|o, &y| *o = F::from_f64(y)),
+                Some(a) => Zip::from(&mut row)
+                    .and(ys)
+                    .and(a)
+                    .for_each(|o, &y, &a| *o = F::from_f64(y + a)),
+            },
         }
     }
 }
 
 /// The first `(t, m)` (row-major) where `a` is not finite.
 pub fn first_non_finite_2d<F: Real>(a: &ArrayView2<'_, F>, par: Par) -> Option<(usize, usize)> {
-    first_where(a, par, |x: &F| !x.finite())
+    first_where(a, par, |x: &F| !x.finite(), super::finite::all_finite)
 }
 
 pub(crate) fn check_finite_2d<F: Real>(
@@ -639,14 +655,16 @@ pub(crate) fn check_finite_2d<F: Real>(
 }
 
 fn first_true(a: &ArrayView2<'_, bool>, par: Par) -> Option<(usize, usize)> {
-    first_where(a, par, |x: &bool| *x)
+    first_where(a, par, |x: &bool| *x, |s: &[bool]| !s.contains(&true))
 }
 
-/// Row-major first element satisfying `bad`, searched block-parallel.
-fn first_where<T: Sync, P: Fn(&T) -> bool + Sync>(
+/// Row-major first element satisfying `bad`, searched block-parallel;
+/// `quick_ok(block)` may prove a contiguous block clean without `bad`.
+fn first_where<T: Sync, P: Fn(&T) -> bool + Sync, Q: Fn(&[T]) -> bool + Sync>(
     a: &ArrayView2<'_, T>,
     par: Par,
     bad: P,
+    quick_ok: Q,
 ) -> Option<(usize, usize)> {
     let (rows, cols) = a.dim();
     if rows == 0 || cols == 0 {
@@ -658,8 +676,8 @@ fn first_where<T: Sync, P: Fn(&T) -> bool + Sync>(
         let r1 = (r0 + rows_per).min(rows);
         let blk = a.slice(s![r0..r1, ..]);
         if let Some(sl) = blk.as_slice() {
-            // Contiguous: a quick all-pass first, the position only on failure.
-            if !sl.iter().any(&bad) {
+            // Contiguous: a quick vectorised pass first, the position only on failure.
+            if quick_ok(sl) {
                 return None;
             }
             return sl.iter().position(&bad).map(|k| (r0 + k / cols, k % cols));
@@ -677,7 +695,7 @@ mod tests {
     use super::*;
     use ndarray::{Array1, Array2, ShapeBuilder};
 
-    /// A direct transcription of the definitions, one stream at a time.
+    /// Written straight from the definitions, one stream at a time.
     #[allow(clippy::too_many_arguments)]
     fn reference(
         r: &Array2<f64>,
