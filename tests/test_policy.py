@@ -35,8 +35,8 @@ def vtrace_ref(blp, tlp, r, v, term, trunc, nv, boot, gamma, lam, rho_bar, c_bar
     """Espeholt et al. 2018, section 4.1, recursive form
     v_s = V(x_s) + delta_s V + gamma c_s (v_{s+1} - V(x_{s+1})),
     delta_s V = rho_s (r_s + gamma V(x_{s+1}) - V(x_s)); pg advantage
-    rho_s (r_s + gamma v_{s+1} - V(x_s)). Episode ends follow the gae rule
-    of API.md section 2. A plain float64 loop over time."""
+    rho_s (r_s + gamma v_{s+1} - V(x_s)). Episode ends follow the rules
+    of gae (the bootstrap rule V'_t). A plain float64 loop over time."""
     blp, tlp, r, v = (np.asarray(a, np.float64) for a in (blp, tlp, r, v))
     t_len = r.shape[0]
     rest = r.shape[1:]
@@ -165,7 +165,7 @@ def test_vtrace_property_against_loop(t_len, n, seed, gamma):
 
 
 def test_vtrace_float32_is_float64_rounded_once():
-    # API.md section 1: float32 accumulates in float64 and rounds once.
+    # Common rule of every kernel: float32 accumulates in float64 and rounds once.
     rng = np.random.default_rng(2)
     blp, tlp, r, v, _, term, _, boot = (
         a.astype(np.float32) if a.dtype == np.float64 else a for a in rollout(rng, 50, 6)
@@ -263,7 +263,7 @@ def test_vtrace_out_and_errors():
 
 
 def test_vtrace_thread_count_does_not_change_bits():
-    # API.md section 1: bit-identical for 1 and N threads.
+    # Common rule of every kernel: bit-identical for 1 and N threads.
     rng = np.random.default_rng(5)
     blp, tlp, r, v, _, term, _, boot = rollout(rng, 600, 200)
     old = rollscan.get_num_threads()
@@ -354,7 +354,7 @@ def test_surrogate_dtypes_strides_out_errors():
     rng = np.random.default_rng(8)
     new, old, adv = surrogate_inputs(rng, (50, 4))
     want = clipped_surrogate(new, old, adv)
-    # float32: accumulated in float64 (API.md section 1).
+    # float32: accumulated in float64 (common rule of every kernel).
     n32, o32, a32 = (x.astype(np.float32) for x in (new, old, adv))
     r32 = clipped_surrogate(n32, o32, a32)
     r64 = clipped_surrogate(*(x.astype(np.float64) for x in (n32, o32, a32)))
@@ -733,3 +733,27 @@ def test_bench_references_agree():
     assert (res.approx_kl, res.clip_fraction) == pytest.approx((kl, frac), rel=1e-12)
     assert (res.ratio_mean, res.ratio_max) == pytest.approx((rmean, rmax), rel=1e-12)
     assert len(bench.cases(quick=True)) >= 2
+
+
+def test_docstring_examples_run():
+    # Every public name of this area documents a >>> example that must run.
+    import doctest
+
+    import rollscan.streaming
+
+    objs = [
+        clipped_surrogate,
+        vtrace,
+        RunningMoments,
+        ReturnScaler,
+        EpisodeTracker,
+    ]
+    finder, runner = doctest.DocTestFinder(), doctest.DocTestRunner(optionflags=doctest.ELLIPSIS)
+    attempted = 0
+    for obj in objs:
+        assert obj.__doc__ and ">>>" in obj.__doc__, obj
+        for t in finder.find(obj, obj.__name__, module=rollscan.streaming, globs={}):
+            res = runner.run(t)
+            attempted += res.attempted
+    assert runner.failures == 0
+    assert attempted >= 8
