@@ -15,13 +15,20 @@ from . import _core, ragged
 from ._core import (
     InputError,
     ShapeError,
+    SurrogateResult,
     __version__,
+    clipped_surrogate,
     discounted_returns,
     gae,
     get_num_threads,
     normalize,
     set_num_threads,
+    vtrace,
 )
+
+# Policy-update and off-policy kernels come from _core (above); the running
+# statistics are Python classes over core kernels.
+from .streaming import EpisodeTracker, FinishedEpisodes, ReturnScaler, RunningMoments
 
 # The worker threads of a parent process do not exist in a forked child:
 # start a fresh pool there on first use.
@@ -29,13 +36,20 @@ if hasattr(_os, "register_at_fork"):
     _os.register_at_fork(after_in_child=_core._after_fork_in_child)
 
 __all__ = [
+    "EpisodeTracker",
+    "FinishedEpisodes",
     "InputError",
+    "ReturnScaler",
+    "RunningMoments",
     "ShapeError",
+    "SurrogateResult",
     "__version__",
+    "clipped_surrogate",
     "discounted_returns",
     "gae",
     "get_num_threads",
     "normalize",
     "ragged",
     "set_num_threads",
+    "vtrace",
 ]

@@ -4,6 +4,7 @@
 mod convert;
 mod errors;
 mod layout;
+mod policy;
 mod ragged;
 mod returns;
 mod threads;
@@ -18,5 +19,6 @@ fn _core(m: &Bound<'_, PyModule>) -> PyResult<()> {
     threads::register(m)?;
     returns::register(m)?;
     ragged::register(m)?;
+    policy::register(m)?;
     Ok(())
 }
