@@ -95,7 +95,31 @@ def build_parser() -> argparse.ArgumentParser:
         help="steps held in memory at once (default 1048576)",
     )
     p.add_argument(
-        "--engine", choices=["local"], default="local", help="execution engine (default local)"
+        "--engine",
+        choices=["local", "dask"],
+        default="local",
+        help="execution engine: this process, or one task per shard on a Dask cluster "
+        "(needs the dask extra; default local)",
+    )
+    p.add_argument(
+        "--scheduler",
+        metavar="ADDRESS",
+        help="with --engine dask: address of a running Dask scheduler (default: start a "
+        "local cluster of --workers processes)",
+    )
+    p.add_argument(
+        "--workers",
+        type=_positive_int,
+        metavar="N",
+        help="with --engine dask and no --scheduler: worker processes of the local cluster "
+        "(default 1)",
+    )
+    p.add_argument(
+        "--connect-timeout",
+        type=float,
+        default=5.0,
+        metavar="SECONDS",
+        help="with --scheduler: give up connecting after this long (default 5)",
     )
     p.add_argument(
         "--kernels",
@@ -103,7 +127,14 @@ def build_parser() -> argparse.ArgumentParser:
         default="rollscan",
         help="compiled kernels, or the NumPy reference path (default rollscan)",
     )
-    p.add_argument("--force", action="store_true", help="replace existing outputs")
+    keep = p.add_mutually_exclusive_group()
+    keep.add_argument("--force", action="store_true", help="replace existing outputs")
+    keep.add_argument(
+        "--resume",
+        action="store_true",
+        help="with --engine dask: keep the complete outputs of an earlier run with the same "
+        "inputs and options (verified by their receipts), redo and replace the rest",
+    )
     p.add_argument("--quiet", action="store_true", help="no progress bar, no closing line")
     _add_columns(p, outputs=True)
 
@@ -141,11 +172,9 @@ def _progress(args) -> bool:
 
 
 def _cmd_process(args) -> int:
-    from rollscan.stored.process import process
+    from rollscan.stored.errors import StoredError
 
-    rep = process(
-        args.inputs,
-        args.out,
+    common = dict(
         gamma=args.gamma,
         lam=args.lam,
         normalize=args.normalize,
@@ -156,10 +185,35 @@ def _cmd_process(args) -> int:
         kernels=args.kernels,
         progress=_progress(args),
     )
+    if args.engine == "dask":
+        from rollscan.stored.dask_engine import process_dask
+
+        if args.scheduler and args.workers:
+            raise StoredError(
+                "--workers starts a local cluster; it cannot be used with --scheduler"
+            )
+        rep = process_dask(
+            args.inputs,
+            args.out,
+            resume=args.resume,
+            scheduler=args.scheduler,
+            workers=args.workers,
+            connect_timeout=args.connect_timeout,
+            **common,
+        )
+    else:
+        for option in ("scheduler", "workers", "resume"):
+            if getattr(args, option):
+                raise StoredError(f"--{option} needs --engine dask")
+        from rollscan.stored.process import process
+
+        rep = process(args.inputs, args.out, **common)
     if not args.quiet:
+        kept = rep.timings.get("kept")
+        note = f" ({kept} complete outputs kept)" if kept else ""
         print(
             f"{rep.n_steps} steps, {rep.n_episodes} episodes: {len(rep.outputs)} shards "
-            f"and {rep.episodes_path} written in {rep.timings['total']:.2f}s"
+            f"and {rep.episodes_path} written in {rep.timings['total']:.2f}s{note}"
         )
     return 0
 

@@ -255,6 +255,33 @@ class NpzOutput:
         for name, x in arrays.items():
             self._files[name].write(np.ascontiguousarray(x, dtype=np.float64).data)
 
+    def seal(self) -> dict:
+        """Close the side files and the source; a picklable state for :func:`finish_sealed`.
+
+        Lets another process (a Dask task) assemble the archive later.
+        """
+        for f in self._files.values():
+            f.close()
+        self._files = {}
+        self.source.close()
+        return {
+            "fmt": "npz",
+            "source": self.source.path,
+            "new": dict(self.new),
+            "dtype": self.dtype.str,
+            "stem": self.stem,
+            "raw": dict(self._raw),
+        }
+
+    @classmethod
+    def from_sealed(cls, state: dict, temps: TempFiles) -> NpzOutput:
+        self = cls.__new__(cls)
+        self.source, self.new = NpzShard(state["source"]), state["new"]
+        self.dtype, self.temps, self.stem = np.dtype(state["dtype"]), temps, state["stem"]
+        self._raw, self._files = dict(state["raw"]), {}
+        temps.paths.extend(self._raw.values())  # removed on an error, like our own
+        return self
+
     def finish(self, transforms=None) -> str:
         for f in self._files.values():
             f.close()
@@ -413,7 +440,7 @@ class ParquetOutput:
             self._writer = pq.ParquetWriter(self._path, table.schema)
         self._writer.write_table(table)
 
-    def finish(self, transforms=None) -> str:
+    def _close(self):
         pa, pq = _pa()
         if self._writer is None:  # an empty shard: the input schema plus the new columns
             schema = self._source.schema
@@ -425,6 +452,31 @@ class ParquetOutput:
             self._writer = pq.ParquetWriter(self._path, schema)
         self._writer.close()
         self._source.close()
+
+    def seal(self) -> dict:
+        """Close the temporary file (deferred mode); a picklable state for :func:`finish_sealed`."""
+        self._close()
+        return {
+            "fmt": "parquet",
+            "path": self._path,
+            "new": dict(self.new),
+            "dtype": self.dtype.str,
+            "stem": self.stem,
+        }
+
+    @classmethod
+    def from_sealed(cls, state: dict, temps: TempFiles) -> ParquetOutput:
+        self = cls.__new__(cls)
+        self.new, self.dtype, self.temps = state["new"], np.dtype(state["dtype"]), temps
+        self.stem, self.deferred, self._path = state["stem"], True, state["path"]
+        self._writer = self._source = None
+        temps.paths.append(self._path)
+        return self
+
+    def finish(self, transforms=None) -> str:
+        pa, pq = _pa()
+        if self._source is not None:
+            self._close()
         if not self.deferred:
             return self._path
         transforms = transforms or {}
@@ -450,6 +502,12 @@ class ParquetOutput:
             writer.close()
         self.temps.discard(self._path)
         return path
+
+
+def finish_sealed(state: dict, temps: TempFiles, transforms=None) -> str:
+    """Finish an output sealed by ``seal()`` (possibly in another process)."""
+    cls = NpzOutput if state["fmt"] == "npz" else ParquetOutput
+    return cls.from_sealed(state, temps).finish(transforms)
 
 
 # ------------------------------------------------------------ small tables

@@ -49,6 +49,15 @@ def get_kernels(name: str):
     return native_kernels()
 
 
+def chunk_moments(x: np.ndarray):
+    """``(count, mean, M2)`` of one block of values."""
+    n = x.size
+    if n == 0:
+        return 0, 0.0, 0.0
+    mean = float(x.mean())
+    return n, mean, float(((x - mean) ** 2).sum())
+
+
 @dataclass
 class Moments:
     """count / mean / M2 with the pairwise merge of Chan et al. (1979)."""
@@ -58,11 +67,12 @@ class Moments:
     m2: float = 0.0
 
     def add(self, x: np.ndarray):
-        n = x.size
+        self.merge(*chunk_moments(x))
+
+    def merge(self, n: int, mean: float, m2: float):
+        """Fold in the moments of one more block (in data order, for bit-identical results)."""
         if n == 0:
             return
-        mean = float(x.mean())
-        m2 = float(((x - mean) ** 2).sum())
         total = self.count + n
         delta = mean - self.mean
         self.mean += delta * n / total
@@ -193,24 +203,24 @@ class Report:
     timings: dict = field(default_factory=dict)
 
 
-def process(
-    paths,
-    out_dir,
-    *,
-    gamma,
-    lam=None,
-    normalize=False,
-    eps=1e-8,
-    chunk_steps=1 << 20,
-    names: Names | None = None,
-    force=False,
-    kernels="rollscan",
-    progress=False,
-) -> Report:
-    """Run ``rollscan process``; raise :class:`StoredError` on bad input (nothing written)."""
-    names = names or Names()
-    timings = {}
-    t0 = time.perf_counter()
+@dataclass
+class Plan:
+    """A checked run: the data set, the parameters and where every output goes."""
+
+    paths: list
+    out_dir: str
+    ds: Dataset
+    params: cr.Params
+    outputs: list
+    episodes_path: str
+    fmt: str
+
+
+def plan_run(paths, out_dir, *, gamma, lam, normalize, chunk_steps, names: Names) -> Plan:
+    """Check the options and every shard's headers; name the outputs (nothing is written).
+
+    Shared by every engine, so they refuse the same inputs with the same messages.
+    """
     if not 0.0 <= gamma <= 1.0:
         raise StoredError(f"--gamma must be in [0, 1], got {gamma}")
     if lam is not None and not 0.0 <= lam <= 1.0:
@@ -233,7 +243,6 @@ def process(
             )
         lam = None
     params = cr.Params(gamma=float(gamma), lam=None if lam is None else float(lam))
-    kern = get_kernels(kernels)
 
     out_dir = os.path.abspath(out_dir)
     outputs = output_names(paths, out_dir)
@@ -243,6 +252,40 @@ def process(
     for target in [*outputs, episodes_path]:
         if os.path.realpath(target) in inputs:
             raise StoredError(f"the output {target} would overwrite an input; choose another --out")
+    return Plan(paths, out_dir, ds, params, outputs, episodes_path, fmt)
+
+
+def process(
+    paths,
+    out_dir,
+    *,
+    gamma,
+    lam=None,
+    normalize=False,
+    eps=1e-8,
+    chunk_steps=1 << 20,
+    names: Names | None = None,
+    force=False,
+    kernels="rollscan",
+    progress=False,
+) -> Report:
+    """Run ``rollscan process``; raise :class:`StoredError` on bad input (nothing written)."""
+    names = names or Names()
+    timings = {}
+    t0 = time.perf_counter()
+    plan = plan_run(
+        paths,
+        out_dir,
+        gamma=gamma,
+        lam=lam,
+        normalize=normalize,
+        chunk_steps=chunk_steps,
+        names=names,
+    )
+    ds, params, outputs, episodes_path = plan.ds, plan.params, plan.outputs, plan.episodes_path
+    paths, out_dir, fmt = plan.paths, plan.out_dir, plan.fmt
+    kern = get_kernels(kernels)
+    for target in [*outputs, episodes_path]:
         if os.path.exists(target) and not force:
             raise StoredError(f"the output {target} exists (use --force to replace it)")
     created = not os.path.isdir(out_dir)
