@@ -8,7 +8,6 @@ from __future__ import annotations
 
 import argparse
 import json
-import signal
 import sys
 
 COLUMN_OPTIONS = {
@@ -246,10 +245,6 @@ def _cmd_bench(args) -> int:
     return int(bench.main(args.rest) or 0)
 
 
-def _raise_interrupt(signum, frame):
-    raise KeyboardInterrupt
-
-
 def main(argv=None) -> int:
     parser = build_parser()
     argv = sys.argv[1:] if argv is None else list(argv)
@@ -260,11 +255,9 @@ def main(argv=None) -> int:
     except SystemExit as e:
         return int(e.code or 0)
     from rollscan.stored.errors import StoredError
+    from rollscan.stored.interrupts import install
 
-    try:
-        old = signal.signal(signal.SIGTERM, _raise_interrupt)
-    except ValueError:  # not the main thread
-        old = None
+    restore = install()
     try:
         return {"process": _cmd_process, "summary": _cmd_summary, "demo": _cmd_demo}[args.command](
             args
@@ -279,8 +272,7 @@ def main(argv=None) -> int:
         )
         return 130
     finally:
-        if old is not None:
-            signal.signal(signal.SIGTERM, old)
+        restore()
 
 
 if __name__ == "__main__":

@@ -28,6 +28,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from .errors import StoredError
+from .interrupts import critical_method
 
 _COPY_BLOCK = 4 << 20
 _CORRUPT = (zipfile.BadZipFile, zlib.error, EOFError, OSError, ValueError)
@@ -251,10 +252,12 @@ class NpzOutput:
         self._raw = {name: temps.new(f"{stem}.{name}") for name in new}
         self._files = {name: open(p, "wb") for name, p in self._raw.items()}
 
+    @critical_method
     def write_chunk(self, arrays: dict, table=None):
         for name, x in arrays.items():
             self._files[name].write(np.ascontiguousarray(x, dtype=np.float64).data)
 
+    @critical_method
     def seal(self) -> dict:
         """Close the side files and the source; a picklable state for :func:`finish_sealed`.
 
@@ -282,6 +285,7 @@ class NpzOutput:
         temps.paths.extend(self._raw.values())  # removed on an error, like our own
         return self
 
+    @critical_method
     def finish(self, transforms=None) -> str:
         for f in self._files.values():
             f.close()
@@ -431,6 +435,7 @@ class ParquetOutput:
         self._writer = None
         self._source = source
 
+    @critical_method
     def write_chunk(self, arrays: dict, table):
         _, pq = _pa()
         dt = np.float64 if self.deferred else self.dtype
@@ -440,6 +445,7 @@ class ParquetOutput:
             self._writer = pq.ParquetWriter(self._path, table.schema)
         self._writer.write_table(table)
 
+    @critical_method
     def _close(self):
         pa, pq = _pa()
         if self._writer is None:  # an empty shard: the input schema plus the new columns
@@ -453,6 +459,7 @@ class ParquetOutput:
         self._writer.close()
         self._source.close()
 
+    @critical_method
     def seal(self) -> dict:
         """Close the temporary file (deferred mode); a picklable state for :func:`finish_sealed`."""
         self._close()
@@ -473,6 +480,7 @@ class ParquetOutput:
         temps.paths.append(self._path)
         return self
 
+    @critical_method
     def finish(self, transforms=None) -> str:
         pa, pq = _pa()
         if self._source is not None:
@@ -504,6 +512,7 @@ class ParquetOutput:
         return path
 
 
+@critical_method
 def finish_sealed(state: dict, temps: TempFiles, transforms=None) -> str:
     """Finish an output sealed by ``seal()`` (possibly in another process)."""
     cls = NpzOutput if state["fmt"] == "npz" else ParquetOutput
@@ -513,6 +522,7 @@ def finish_sealed(state: dict, temps: TempFiles, transforms=None) -> str:
 # ------------------------------------------------------------ small tables
 
 
+@critical_method
 def write_table(path: str, columns: dict, fmt: str, shard_files=None):
     """Write a small table (the per-episode table) in one go to ``path``.
 
