@@ -350,62 +350,107 @@ fn block_kernel<F: Real>(
 ) -> Partial {
     let n = g.len();
     let (nl, ol, ad) = (&nl[..n], &ol[..n], &ad[..n]);
-    let mut obj = [0.0f64; LANES];
-    let mut kl = [0.0f64; LANES];
-    let mut ratio = [0.0f64; LANES];
-    let mut clipped = [0.0f64; LANES];
-    let mut rmax = [f64::NEG_INFINITY; LANES];
     // Groups of LANES independent elements (a fixed inner loop the compiler
     // unrolls and vectorises), then the tail; element i always lands in
     // lane i % LANES.
-    let groups = n.div_ceil(LANES);
-    for gi in 0..groups {
-        let base = gi * LANES;
-        let len = LANES.min(n - base);
-        let mut lr = [0.0f64; LANES];
-        let mut adv = [0.0f64; LANES];
-        let mut sel = [false; LANES];
-        for l in 0..len {
-            lr[l] = nl[base + l].to_f64() - ol[base + l].to_f64();
-            adv[l] = ad[base + l].to_f64();
-            sel[l] = m.is_none_or(|m| m[base + l]);
-        }
-        // The exponentials alone: a plain loop of arithmetic that vectorises.
-        let mut ratio_l = [0.0f64; LANES];
+    let mut acc = Acc {
+        obj: [0.0; LANES],
+        kl: [0.0; LANES],
+        ratio: [0.0; LANES],
+        clipped: [0.0; LANES],
+        rmax: [f64::NEG_INFINITY; LANES],
+    };
+    let full = n / LANES * LANES;
+    let mut lr = [0.0f64; LANES];
+    let mut adv = [0.0f64; LANES];
+    let mut sel = [true; LANES];
+    let mut d = [0.0f64; LANES];
+    for base in (0..full).step_by(LANES) {
+        let (a, b, e) = (
+            &nl[base..base + LANES],
+            &ol[base..base + LANES],
+            &ad[base..base + LANES],
+        );
         for l in 0..LANES {
-            ratio_l[l] = fastmath::exp(lr[l]);
+            lr[l] = a[l].to_f64() - b[l].to_f64();
+            adv[l] = e[l].to_f64();
         }
-        let mut d = [0.0f64; LANES];
-        for l in 0..LANES {
-            let (dl, o, k, r, cf) = element(lr[l], ratio_l[l], adv[l], sel[l], c);
-            d[l] = dl;
-            obj[l] += o;
-            kl[l] += k;
-            ratio[l] += r;
-            clipped[l] += cf;
-            let rm = if sel[l] { r } else { f64::NEG_INFINITY };
-            // Sticky NaN: once a lane's max is NaN it stays NaN.
-            rmax[l] = if rm > rmax[l] || rm.is_nan() {
-                rm
-            } else {
-                rmax[l]
-            };
+        if let Some(m) = m {
+            sel.copy_from_slice(&m[base..base + LANES]);
         }
+        group(&mut acc, &lr, &adv, &sel, &mut d, c);
+        for (o, &v) in g[base..base + LANES].iter_mut().zip(&d) {
+            *o = F::from_f64(v);
+        }
+    }
+    if full < n {
+        // The tail, padded with unselected elements (which add nothing).
+        let len = n - full;
+        lr = [0.0; LANES];
+        adv = [0.0; LANES];
+        sel = [false; LANES];
         for l in 0..len {
-            g[base + l] = F::from_f64(d[l]);
+            lr[l] = nl[full + l].to_f64() - ol[full + l].to_f64();
+            adv[l] = ad[full + l].to_f64();
+            sel[l] = m.is_none_or(|m| m[full + l]);
+        }
+        group(&mut acc, &lr, &adv, &sel, &mut d, c);
+        for l in 0..len {
+            g[full + l] = F::from_f64(d[l]);
         }
     }
     let mut p = Partial::ZERO;
     for l in 0..LANES {
         p = p.add(Partial {
-            obj: obj[l],
-            kl: kl[l],
-            ratio: ratio[l],
-            ratio_max: rmax[l],
-            clipped: clipped[l],
+            obj: acc.obj[l],
+            kl: acc.kl[l],
+            ratio: acc.ratio[l],
+            ratio_max: acc.rmax[l],
+            clipped: acc.clipped[l],
         });
     }
     p
+}
+
+/// Per-lane partial sums of [`block_kernel`].
+struct Acc {
+    obj: [f64; LANES],
+    kl: [f64; LANES],
+    ratio: [f64; LANES],
+    clipped: [f64; LANES],
+    rmax: [f64; LANES],
+}
+
+/// One group of [`LANES`] elements: fixed-size arrays, so the loops unroll and
+/// vectorise (and, being inlined, inherit the caller's target features).
+#[inline(always)]
+fn group(
+    acc: &mut Acc,
+    lr: &[f64; LANES],
+    adv: &[f64; LANES],
+    sel: &[bool; LANES],
+    d: &mut [f64; LANES],
+    c: &Consts,
+) {
+    let mut ratio_l = [0.0f64; LANES];
+    for l in 0..LANES {
+        ratio_l[l] = fastmath::exp(lr[l]);
+    }
+    for l in 0..LANES {
+        let (dl, o, k, r, cf) = element(lr[l], ratio_l[l], adv[l], sel[l], c);
+        d[l] = dl;
+        acc.obj[l] += o;
+        acc.kl[l] += k;
+        acc.ratio[l] += r;
+        acc.clipped[l] += cf;
+        let rm = if sel[l] { r } else { f64::NEG_INFINITY };
+        // Sticky NaN: once a lane's max is NaN it stays NaN.
+        acc.rmax[l] = if rm > acc.rmax[l] || rm.is_nan() {
+            rm
+        } else {
+            acc.rmax[l]
+        };
+    }
 }
 
 /// The first non-finite element in logical row-major order.
@@ -418,7 +463,7 @@ fn first_non_finite<F: Real>(a: &ArrayViewD<'_, F>, par: Par) -> Option<usize> {
             .collect();
         return par
             .map(chunks, |(off, c)| {
-                if c.iter().all(|x| x.finite()) {
+                if super::finite::all_finite(c) {
                     None
                 } else {
                     c.iter().position(|x| !x.finite()).map(|k| off + k)
