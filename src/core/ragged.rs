@@ -262,11 +262,13 @@ where
     let nb = n.div_ceil(BLOCK);
     let bounds = |b: usize| (b * BLOCK, ((b + 1) * BLOCK).min(n));
     // Per-worker scratch: x, c and the scan's products, one block each.
+    // Sized to the data so a short call does not zero a whole block.
+    let cap = BLOCK.min(n);
     let init = || {
         (
-            vec![0.0f64; BLOCK],
-            vec![0.0f64; BLOCK],
-            Vec::<f64>::with_capacity(BLOCK),
+            vec![0.0f64; cap],
+            vec![0.0f64; cap],
+            Vec::<f64>::with_capacity(cap),
         )
     };
     // 1. Affine maps of every block but the first (its map is never needed).
