@@ -185,3 +185,127 @@ def _track_episodes(
     NDArray[np.float64],
     NDArray[np.int64],
 ]: ...
+
+# Action heads (contract section 4). Batch axes lead; the action axis is last.
+def categorical_log_prob(
+    logits: ArrayLike,
+    actions: ArrayLike,
+    *,
+    mask: ArrayLike | None = None,
+    check_finite: bool = True,
+    out: _Out = None,
+) -> NDArray[Any]: ...
+def categorical_entropy(
+    logits: ArrayLike,
+    *,
+    mask: ArrayLike | None = None,
+    check_finite: bool = True,
+    out: _Out = None,
+) -> NDArray[Any]: ...
+def categorical_log_prob_entropy(
+    logits: ArrayLike,
+    actions: ArrayLike,
+    *,
+    mask: ArrayLike | None = None,
+    check_finite: bool = True,
+    out: _OutPair = None,
+) -> tuple[NDArray[Any], NDArray[Any]]: ...
+def categorical_kl(
+    logits_p: ArrayLike,
+    logits_q: ArrayLike,
+    *,
+    mask: ArrayLike | None = None,
+    check_finite: bool = True,
+    out: _Out = None,
+) -> NDArray[Any]: ...
+def categorical_score(
+    logits: ArrayLike,
+    actions: ArrayLike,
+    *,
+    mask: ArrayLike | None = None,
+    check_finite: bool = True,
+    out: _Out = None,
+) -> NDArray[Any]: ...
+def categorical_sample(
+    logits: ArrayLike,
+    *,
+    seed: int,
+    mask: ArrayLike | None = None,
+    check_finite: bool = True,
+    out: _Out = None,
+) -> NDArray[np.int64]: ...
+def categorical_mode(
+    logits: ArrayLike,
+    *,
+    mask: ArrayLike | None = None,
+    check_finite: bool = True,
+    out: _Out = None,
+) -> NDArray[np.int64]: ...
+def gaussian_log_prob(
+    mean: ArrayLike,
+    log_std: ArrayLike,
+    actions: ArrayLike,
+    *,
+    check_finite: bool = True,
+    out: _Out = None,
+) -> NDArray[Any]: ...
+def gaussian_entropy(
+    log_std: ArrayLike,
+    *,
+    check_finite: bool = True,
+    out: _Out = None,
+) -> NDArray[Any]: ...
+def gaussian_log_prob_entropy(
+    mean: ArrayLike,
+    log_std: ArrayLike,
+    actions: ArrayLike,
+    *,
+    check_finite: bool = True,
+    out: _OutPair = None,
+) -> tuple[NDArray[Any], NDArray[Any]]: ...
+def gaussian_kl(
+    mean_p: ArrayLike,
+    log_std_p: ArrayLike,
+    mean_q: ArrayLike,
+    log_std_q: ArrayLike,
+    *,
+    check_finite: bool = True,
+    out: _Out = None,
+) -> NDArray[Any]: ...
+def gaussian_score(
+    mean: ArrayLike,
+    log_std: ArrayLike,
+    actions: ArrayLike,
+    *,
+    check_finite: bool = True,
+    out: _OutPair = None,
+) -> tuple[NDArray[Any], NDArray[Any]]: ...
+def gaussian_sample(
+    mean: ArrayLike,
+    log_std: ArrayLike,
+    *,
+    seed: int,
+    check_finite: bool = True,
+    out: _Out = None,
+) -> NDArray[Any]: ...
+def squashed_gaussian_log_prob(
+    mean: ArrayLike,
+    log_std: ArrayLike,
+    actions: ArrayLike,
+    *,
+    low: ArrayLike = -1.0,
+    high: ArrayLike = 1.0,
+    pre_squash: ArrayLike | None = None,
+    check_finite: bool = True,
+    out: _Out = None,
+) -> NDArray[Any]: ...
+def squashed_gaussian_sample(
+    mean: ArrayLike,
+    log_std: ArrayLike,
+    *,
+    seed: int,
+    low: ArrayLike = -1.0,
+    high: ArrayLike = 1.0,
+    check_finite: bool = True,
+    out: _OutPair = None,
+) -> tuple[NDArray[Any], NDArray[Any]]: ...

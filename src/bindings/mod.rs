@@ -3,6 +3,7 @@
 
 mod convert;
 mod errors;
+mod heads;
 mod layout;
 mod policy;
 mod ragged;
@@ -20,5 +21,6 @@ fn _core(m: &Bound<'_, PyModule>) -> PyResult<()> {
     returns::register(m)?;
     ragged::register(m)?;
     policy::register(m)?;
+    heads::register(m)?;
     Ok(())
 }

@@ -14,6 +14,7 @@ pub mod error;
 pub mod fastmath;
 pub mod finite;
 pub mod float;
+pub mod heads;
 pub mod par;
 pub mod policy;
 pub mod ragged;

@@ -1,0 +1,717 @@
+//! Diagonal Gaussian heads: `mean [batch..., D]`, `log_std` either shared by
+//! every row (`[D]`) or per row (broadcastable to `mean`), actions
+//! `[batch..., D]`. Densities and entropies are summed over the last axis, in
+//! axis order:
+//!
+//! ```text
+//! z_j      = (a_j - mu_j) e^{-s_j}
+//! log p(a) = sum_j (-z_j^2 / 2 - s_j) - D ln(2 pi) / 2
+//! H        = sum_j s_j + D (1 + ln(2 pi)) / 2
+//! d log p / d mu_j = (a_j - mu_j) e^{-2 s_j},   d log p / d s_j = z_j^2 - 1
+//! KL(p||q) = sum_j (s_q - s_p) + (e^{2 s_p} + (mu_p - mu_q)^2) / (2 e^{2 s_q}) - 1/2
+//! ```
+//!
+//! The KL is evaluated per dimension as `(expm1(-2 d) + 2 d) / 2 + (dmu e^{-s_q})^2 / 2`
+//! with `d = s_q - s_p`, which is never negative and exactly 0 for `p = q`.
+//!
+//! The same row pass serves the tanh-squashed head ([`super::squashed`]): it
+//! then evaluates the density at the pre-squash value `u` and subtracts the
+//! log-Jacobian of the squash.
+
+use super::categorical::Out;
+use super::math::{exp_inplace, exp_to, half_tanh_p1, log1m_tanh2, simd, HALF_LN_2PI};
+use super::rng::Stream;
+use super::squashed::Bounds;
+use super::{
+    any_nan, batch_shape, first_error, gather_col, gather_t, row_starts, scatter_col, scatter_t,
+    split_last, to2, to2_mut, Buf,
+};
+use super::{At, Layout};
+use crate::core::error::{CoreError, CoreResult};
+use crate::core::float::Real;
+use crate::core::par::Par;
+use ndarray::{ArrayView2, ArrayViewD, ArrayViewMutD, Ix1};
+
+/// The log standard deviation of a Gaussian head.
+#[derive(Debug, Clone)]
+pub enum LogStd<'a, F> {
+    /// One value per action dimension (length `D`, or 1 for all), shared by
+    /// every row; it does not take part in dtype promotion.
+    Shared(Vec<f64>),
+    /// Per row: broadcastable to the mean.
+    PerRow(ArrayViewD<'a, F>),
+}
+
+impl<F> LogStd<'_, F> {
+    /// The values of `v` when every axis but the last has length 1 (a
+    /// state-independent `log_std`), else `None`.
+    pub fn shared_values<G: Real>(v: &ArrayViewD<'_, G>) -> Option<Vec<f64>> {
+        let sh = v.shape();
+        if sh.len() > 1 && sh[..sh.len() - 1].iter().any(|&n| n != 1) {
+            return None;
+        }
+        Some(v.iter().map(|x| x.to_f64()).collect())
+    }
+}
+
+/// A diagonal Gaussian.
+#[derive(Debug, Clone)]
+pub struct Normal<'a, F> {
+    /// `[batch..., D]`.
+    pub mean: ArrayViewD<'a, F>,
+    /// Shared or per row.
+    pub log_std: LogStd<'a, F>,
+    /// Reject non-finite means, log-stds and actions.
+    pub check_finite: bool,
+}
+
+/// The outputs of [`gaussian`]; any subset.
+#[derive(Debug)]
+pub struct GaussOut<'a, F> {
+    /// `log p(actions)`, `[batch...]`.
+    pub log_prob: Option<Out<'a, F>>,
+    /// Entropy, `[batch...]`.
+    pub entropy: Option<Out<'a, F>>,
+    /// `d log p / d mean`, `[batch..., D]`.
+    pub d_mean: Option<Out<'a, F>>,
+    /// `d log p / d log_std`, `[batch..., D]`.
+    pub d_log_std: Option<Out<'a, F>>,
+    /// A sample (the squashed action for the squashed head), `[batch..., D]`.
+    pub sample: Option<Out<'a, F>>,
+    /// The pre-squash sample (squashed head only), `[batch..., D]`.
+    pub pre_squash: Option<Out<'a, F>>,
+}
+
+impl<F> Default for GaussOut<'_, F> {
+    fn default() -> Self {
+        GaussOut {
+            log_prob: None,
+            entropy: None,
+            d_mean: None,
+            d_log_std: None,
+            sample: None,
+            pre_squash: None,
+        }
+    }
+}
+
+/// Log-density, entropy, score and sampling of a diagonal Gaussian; `seed`
+/// goes with `out.sample`.
+pub fn gaussian<F: Real>(
+    nrm: &Normal<'_, F>,
+    actions: Option<ArrayViewD<'_, F>>,
+    seed: Option<u64>,
+    out: GaussOut<'_, F>,
+    par: Par,
+) -> CoreResult<()> {
+    run(nrm, actions, None, seed, None, out, par)
+}
+
+/// The shared log-std expanded to `D` values, or its shape error.
+fn expand_shared(v: &[f64], d: usize, mean: &[usize], name: &str) -> CoreResult<Vec<f64>> {
+    match v.len() {
+        n if n == d => Ok(v.to_vec()),
+        1 => Ok(vec![v[0]; d]),
+        n => Err(CoreError::shape_mismatch(
+            name,
+            &[n],
+            "mean",
+            mean,
+            &format!("{name} must broadcast to the shape of mean"),
+        )),
+    }
+}
+
+/// Everything a block needs besides its views.
+struct Ctx<'x> {
+    shared: Option<(Vec<f64>, Vec<f64>)>,
+    bounds: Option<&'x Bounds>,
+    pre_given: bool,
+    seed: Option<u64>,
+    check: bool,
+    entropy_const: Option<f64>,
+}
+
+struct GBlock<'b, F> {
+    row0: usize,
+    mean: ArrayView2<'b, F>,
+    ls: Option<ArrayView2<'b, F>>,
+    a: Option<ArrayView2<'b, F>>,
+    log_prob: Option<ArrayViewMutD<'b, F>>,
+    entropy: Option<ArrayViewMutD<'b, F>>,
+    d_mean: Option<ArrayViewMutD<'b, F>>,
+    d_log_std: Option<ArrayViewMutD<'b, F>>,
+    sample: Option<ArrayViewMutD<'b, F>>,
+    pre: Option<ArrayViewMutD<'b, F>>,
+}
+
+/// The row pass of the Gaussian and squashed heads. With `bounds`, the
+/// density is evaluated at `u = pre_squash` (or `atanh` of the rescaled
+/// actions) and the log-Jacobian subtracted, and samples are squashed.
+pub(crate) fn run<F: Real>(
+    nrm: &Normal<'_, F>,
+    actions: Option<ArrayViewD<'_, F>>,
+    pre_squash: Option<ArrayViewD<'_, F>>,
+    seed: Option<u64>,
+    bounds: Option<&Bounds>,
+    out: GaussOut<'_, F>,
+    par: Par,
+) -> CoreResult<()> {
+    let shape = nrm.mean.shape();
+    let (batch, d) = split_last("mean", shape)?;
+    let rows: usize = batch.iter().product();
+    if let Some(a) = &actions {
+        super::same_shape(
+            "actions",
+            a.shape(),
+            "mean",
+            shape,
+            "actions must have the shape of mean",
+        )?;
+    }
+    if let Some(u) = &pre_squash {
+        super::same_shape(
+            "pre_squash",
+            u.shape(),
+            "mean",
+            shape,
+            "pre_squash must have the shape of mean",
+        )?;
+    }
+    if (out.log_prob.is_some() || out.d_mean.is_some() || out.d_log_std.is_some())
+        && actions.is_none()
+        && pre_squash.is_none()
+    {
+        return Err(CoreError::input("actions", "is required"));
+    }
+    if out.sample.is_some() != seed.is_some() {
+        return Err(CoreError::input("seed", "goes with a sample output"));
+    }
+    for o in [&out.log_prob, &out.entropy].into_iter().flatten() {
+        batch_shape(o.name, o.view.shape(), "mean", shape)?;
+    }
+    for o in [&out.d_mean, &out.d_log_std, &out.sample, &out.pre_squash]
+        .into_iter()
+        .flatten()
+    {
+        super::same_shape(
+            o.name,
+            o.view.shape(),
+            "mean",
+            shape,
+            "out must have the shape of mean",
+        )?;
+    }
+    if let Some(b) = bounds {
+        if b.low.len() != d {
+            return Err(CoreError::Shape(format!(
+                "low/high have {} values but mean has {d} action dimensions",
+                b.low.len()
+            )));
+        }
+    }
+    let (ls_view, shared) = match &nrm.log_std {
+        LogStd::Shared(v) => {
+            let v = expand_shared(v, d, shape, "log_std")?;
+            if nrm.check_finite && rows > 0 {
+                if let Some(j) = v.iter().position(|x| !x.is_finite()) {
+                    return Err(CoreError::non_finite("log_std", At::RowCol(0, j)));
+                }
+            }
+            let mut inv: Vec<f64> = v.iter().map(|&s| -s).collect();
+            exp_inplace(&mut inv);
+            (None, Some((v, inv)))
+        }
+        LogStd::PerRow(v) => (Some(super::broadcast("log_std", v, "mean", shape)?), None),
+    };
+
+    // The entropy of a shared log-std is one number, summed in axis order.
+    let ent_term = 0.5 + HALF_LN_2PI;
+    let entropy_const = shared.as_ref().map(|(v, _)| {
+        let s: f64 = v.iter().fold(0.0, |a, &x| a + x);
+        s + d as f64 * ent_term
+    });
+
+    let mut strides: Vec<&[isize]> = vec![nrm.mean.strides()];
+    for v in [&ls_view, &actions, &pre_squash].into_iter().flatten() {
+        strides.push(v.strides());
+    }
+    let outs = [
+        &out.log_prob,
+        &out.entropy,
+        &out.d_mean,
+        &out.d_log_std,
+        &out.sample,
+        &out.pre_squash,
+    ];
+    for o in outs.into_iter().flatten() {
+        strides.push(o.view.strides());
+    }
+    let layout = Layout::new(batch, d, &strides);
+    let mb = layout.split(nrm.mean.view());
+    let n = mb.len();
+    let starts = row_starts(mb.iter().map(|b| b.shape()[0]));
+    let lsb = layout.split_opt(ls_view, n);
+    let pre_given = pre_squash.is_some();
+    let a_src = if pre_given { pre_squash } else { actions };
+    let ab = layout.split_opt(a_src, n);
+    let lpb = layout.split_opt(out.log_prob.map(|o| o.view), n);
+    let enb = layout.split_opt(out.entropy.map(|o| o.view), n);
+    let dmb = layout.split_opt(out.d_mean.map(|o| o.view), n);
+    let dlb = layout.split_opt(out.d_log_std.map(|o| o.view), n);
+    let smb = layout.split_opt(out.sample.map(|o| o.view), n);
+    let prb = layout.split_opt(out.pre_squash.map(|o| o.view), n);
+    let two = to2::<F>;
+    let mut items = Vec::with_capacity(n);
+    let mut it = (
+        lsb.into_iter(),
+        ab.into_iter(),
+        lpb.into_iter(),
+        enb.into_iter(),
+    );
+    let mut it2 = (
+        dmb.into_iter(),
+        dlb.into_iter(),
+        smb.into_iter(),
+        prb.into_iter(),
+    );
+    for (row0, mean) in starts.into_iter().zip(mb) {
+        let (ls, a, lp, en) = (it.0.next(), it.1.next(), it.2.next(), it.3.next());
+        let (dm, dl, sm, pr) = (it2.0.next(), it2.1.next(), it2.2.next(), it2.3.next());
+        items.push(GBlock {
+            row0,
+            mean: two(mean),
+            ls: ls.flatten().map(two),
+            a: a.flatten().map(two),
+            log_prob: lp.flatten(),
+            entropy: en.flatten(),
+            d_mean: dm.flatten(),
+            d_log_std: dl.flatten(),
+            sample: sm.flatten(),
+            pre: pr.flatten(),
+        });
+    }
+    let ctx = Ctx {
+        shared,
+        bounds,
+        pre_given,
+        seed,
+        check: nrm.check_finite,
+        entropy_const,
+    };
+    let results = layout.par(par).map(items, |b| {
+        simd(
+            #[inline(always)]
+            || ctx.block(b),
+        )
+    });
+    first_error(results)
+}
+
+impl Ctx<'_> {
+    #[inline(always)]
+    fn block<F: Real>(&self, b: GBlock<'_, F>) -> CoreResult<()> {
+        let (n, d) = b.mean.dim();
+        let nd = n * d;
+        let check = self.check;
+        let squash = self.bounds;
+        let invert = squash.is_some() && !self.pre_given && b.a.is_some();
+        let col = |j: usize| j * n..(j + 1) * n;
+        let conv = |v: F| v.to_f64();
+
+        // Column-major scratch of the block: mean, log_std, exp(-log_std), actions (or u).
+        let mut mu = Buf::stale(nd);
+        gather_t(&b.mean, &mut mu, conv);
+        let mut ls = Buf::stale(nd);
+        let mut inv = Buf::stale(nd);
+        match (&b.ls, &self.shared) {
+            (Some(v), _) => {
+                gather_t(v, &mut ls, conv);
+                inv.iter_mut().zip(ls.iter()).for_each(|(i, &s)| *i = -s);
+                exp_inplace(&mut inv);
+            }
+            (None, Some((sv, si))) => {
+                for j in 0..d {
+                    ls[col(j)].fill(sv[j]);
+                    inv[col(j)].fill(si[j]);
+                }
+            }
+            (None, None) => unreachable!("log_std is shared or per row"),
+        }
+        let mut a = Buf::stale(if b.a.is_some() { nd } else { 0 });
+        if let Some(av) = &b.a {
+            gather_t(av, &mut a, conv);
+        }
+        let mut chk = Buf::filled(n, 0.0);
+        if check {
+            for j in 0..d {
+                let c = col(j);
+                chk.iter_mut()
+                    .zip(&mu[c.clone()])
+                    .for_each(|(k, &m)| *k += m * 0.0);
+                if b.ls.is_some() {
+                    chk.iter_mut()
+                        .zip(&ls[c.clone()])
+                        .for_each(|(k, &s)| *k += s * 0.0);
+                }
+                if b.a.is_some() {
+                    chk.iter_mut().zip(&a[c]).for_each(|(k, &x)| *k += x * 0.0);
+                }
+            }
+        }
+        let mut oor = vec![false; if invert { n } else { 0 }];
+        if invert {
+            let bd = squash.expect("bounds");
+            for j in 0..d {
+                let (lo, hi) = (bd.low[j], bd.high[j]);
+                oor.iter_mut().zip(a[col(j)].iter_mut()).for_each(|(o, x)| {
+                    *o |= *x < lo || *x > hi;
+                    // u = atanh(2 (a - lo) / (hi - lo) - 1), without the
+                    // cancellation near either bound.
+                    *x = 0.5 * ((*x - lo).ln() - (hi - *x).ln());
+                });
+            }
+        }
+        if (check && any_nan(&chk)) || oor.contains(&true) {
+            for r in 0..n {
+                if chk[r].is_nan() || oor.get(r).copied().unwrap_or(false) {
+                    return Err(self.row_error(
+                        &b.mean,
+                        b.ls.as_ref(),
+                        b.a.as_ref(),
+                        r,
+                        b.row0 + r,
+                    ));
+                }
+            }
+        }
+
+        if let Some(o) = b.log_prob {
+            let mut lp = Buf::filled(n, 0.0);
+            for j in 0..d {
+                let c = col(j);
+                let terms = lp
+                    .iter_mut()
+                    .zip(a[c.clone()].iter().zip(&mu[c.clone()]))
+                    .zip(ls[c.clone()].iter().zip(&inv[c]));
+                match squash {
+                    None => terms.for_each(|((l, (&x, &m)), (&s, &iv))| {
+                        let z = (x - m) * iv;
+                        *l += -0.5 * z * z - s;
+                    }),
+                    Some(bd) => {
+                        let lw = (0.5 * (bd.high[j] - bd.low[j])).ln();
+                        terms.for_each(|((l, (&u, &m)), (&s, &iv))| {
+                            let z = (u - m) * iv;
+                            *l += if u.is_infinite() {
+                                f64::NEG_INFINITY
+                            } else {
+                                -0.5 * z * z - s - lw - log1m_tanh2(u)
+                            };
+                        });
+                    }
+                }
+            }
+            let c = -(d as f64) * HALF_LN_2PI;
+            lp.iter_mut().for_each(|l| *l += c);
+            write_rows(&lp, o);
+        }
+        if let Some(o) = b.entropy {
+            let mut ent = Buf::filled(n, 0.0);
+            match self.entropy_const {
+                Some(c) => ent.fill(c),
+                None => {
+                    for j in 0..d {
+                        ent.iter_mut().zip(&ls[col(j)]).for_each(|(e, &s)| *e += s);
+                    }
+                    let c = d as f64 * (0.5 + HALF_LN_2PI);
+                    ent.iter_mut().for_each(|e| *e += c);
+                }
+            }
+            write_rows(&ent, o);
+        }
+        if b.d_mean.is_some() || b.d_log_std.is_some() {
+            let (mut g, mut h) = (Buf::stale(nd), Buf::stale(nd));
+            g.iter_mut()
+                .zip(h.iter_mut())
+                .zip(a.iter().zip(mu.iter()))
+                .zip(inv.iter())
+                .for_each(|(((g, h), (&x, &m)), &iv)| {
+                    let z = (x - m) * iv;
+                    *g = z * iv;
+                    *h = z * z - 1.0;
+                });
+            if let Some(o) = b.d_mean {
+                scatter_t(&g, to2_mut(o));
+            }
+            if let Some(o) = b.d_log_std {
+                scatter_t(&h, to2_mut(o));
+            }
+        }
+        if let (Some(o), Some(seed)) = (b.sample, self.seed) {
+            // u = mean + exp(log_std) * N(0, 1), normals in pairs per row.
+            let mut u = Buf::stale(nd);
+            for r in 0..n {
+                let st = Stream::new(seed, (b.row0 + r) as u64);
+                for p in 0..d.div_ceil(2) {
+                    let (z0, z1) = st.normal_pair(p as u64);
+                    u[2 * p * n + r] = z0;
+                    if 2 * p + 1 < d {
+                        u[(2 * p + 1) * n + r] = z1;
+                    }
+                }
+            }
+            let mut sd = Buf::stale(nd);
+            exp_to(&ls, &mut sd);
+            u.iter_mut()
+                .zip(mu.iter().zip(sd.iter()))
+                .for_each(|(u, (&m, &s))| *u = m + s * *u);
+            match squash {
+                None => scatter_t(&u, to2_mut(o)),
+                Some(bd) => {
+                    if let Some(p) = b.pre {
+                        scatter_t(&u, to2_mut(p));
+                    }
+                    for j in 0..d {
+                        let (lo, hi) = (bd.low[j], bd.high[j]);
+                        let w = hi - lo;
+                        u[col(j)].iter_mut().for_each(|u| {
+                            let x = lo + w * half_tanh_p1(*u);
+                            *u = if x > hi { hi } else { x };
+                        });
+                    }
+                    scatter_t(&u, to2_mut(o));
+                }
+            }
+        }
+        Ok(())
+    }
+
+    /// The first bad element of row `r` (the row is known to hold one).
+    fn row_error<F: Real>(
+        &self,
+        mean: &ArrayView2<'_, F>,
+        ls: Option<&ArrayView2<'_, F>>,
+        a: Option<&ArrayView2<'_, F>>,
+        r: usize,
+        row: usize,
+    ) -> CoreError {
+        let a_name = if self.pre_given {
+            "pre_squash"
+        } else {
+            "actions"
+        };
+        for j in 0..mean.ncols() {
+            let at = At::RowCol(row, j);
+            if self.check && !mean[[r, j]].finite() {
+                return CoreError::non_finite("mean", at);
+            }
+            if self.check && ls.is_some_and(|v| !v[[r, j]].finite()) {
+                return CoreError::non_finite("log_std", at);
+            }
+            if let Some(a) = a {
+                let x = a[[r, j]];
+                if self.check && !x.finite() {
+                    return CoreError::non_finite(a_name, at);
+                }
+                if let (Some(bd), false) = (self.bounds, self.pre_given) {
+                    let v = x.to_f64();
+                    if v < bd.low[j] || v > bd.high[j] {
+                        return CoreError::input_at(
+                            "actions",
+                            at,
+                            format!(
+                                "= {v} is outside [low, high] = [{}, {}]",
+                                bd.low[j], bd.high[j]
+                            ),
+                        );
+                    }
+                }
+            }
+        }
+        CoreError::input_at("mean", At::Flat(row), "holds a bad value")
+    }
+}
+
+fn write_rows<F: Real>(v: &[f64], o: ArrayViewMutD<'_, F>) {
+    scatter_col(v, o.into_dimensionality::<Ix1>().expect("1-D block"));
+}
+
+/// `sum_j log_std_j + D (1 + ln 2 pi) / 2` per row of `log_std [batch..., D]`.
+pub fn gaussian_entropy<F: Real>(
+    log_std: ArrayViewD<'_, F>,
+    check_finite: bool,
+    out: Out<'_, F>,
+    par: Par,
+) -> CoreResult<()> {
+    let shape = log_std.shape();
+    let (batch, d) = split_last("log_std", shape)?;
+    batch_shape(out.name, out.view.shape(), "log_std", shape)?;
+    let layout = Layout::new(batch, d, &[log_std.strides(), out.view.strides()]);
+    let lb = layout.split(log_std.view());
+    let starts = row_starts(lb.iter().map(|b| b.shape()[0]));
+    let ob = layout.split(out.view);
+    let items: Vec<_> = starts.into_iter().zip(lb).zip(ob).collect();
+    let c = d as f64 * (0.5 + HALF_LN_2PI);
+    let results = layout.par(par).map(items, |((row0, l), o)| {
+        let l = to2(l);
+        let n = l.nrows();
+        let (mut acc, mut col, mut chk) = (vec![0.0; n], vec![0.0; n], vec![0.0; n]);
+        for j in 0..d {
+            gather_col(l.column(j), &mut col);
+            acc.iter_mut()
+                .zip(chk.iter_mut())
+                .zip(&col)
+                .for_each(|((a, c), &s)| {
+                    *a += s;
+                    *c += s * 0.0;
+                });
+        }
+        if check_finite && any_nan(&chk) {
+            for r in 0..n {
+                if let Some(j) = (0..d).find(|&j| !l[[r, j]].finite()) {
+                    return Err(CoreError::non_finite("log_std", At::RowCol(row0 + r, j)));
+                }
+            }
+        }
+        acc.iter_mut().for_each(|a| *a += c);
+        write_rows(&acc, o);
+        Ok(())
+    });
+    first_error(results)
+}
+
+type Prepared<'v, 'a, F> = (Option<&'v ArrayViewD<'a, F>>, Option<Vec<f64>>);
+
+fn prep_kl<'v, 'a, F>(
+    ls: &'v LogStd<'a, F>,
+    name: &'static str,
+    d: usize,
+    shape: &[usize],
+    check: bool,
+) -> CoreResult<Prepared<'v, 'a, F>> {
+    Ok(match ls {
+        LogStd::Shared(v) => {
+            let v = expand_shared(v, d, shape, name)?;
+            if check {
+                if let Some(j) = v.iter().position(|x| !x.is_finite()) {
+                    return Err(CoreError::non_finite(name, At::RowCol(0, j)));
+                }
+            }
+            (None, Some(v))
+        }
+        LogStd::PerRow(v) => (Some(v), None),
+    })
+}
+
+/// `KL(p || q)` of two diagonal Gaussians, per row.
+pub fn gaussian_kl<F: Real>(
+    p: &Normal<'_, F>,
+    q: &Normal<'_, F>,
+    out: Out<'_, F>,
+    par: Par,
+) -> CoreResult<()> {
+    let shape = p.mean.shape();
+    let (batch, d) = split_last("mean_p", shape)?;
+    super::same_shape(
+        "mean_q",
+        q.mean.shape(),
+        "mean_p",
+        shape,
+        "mean_q must have the shape of mean_p",
+    )?;
+    batch_shape(out.name, out.view.shape(), "mean_p", shape)?;
+    let rows: usize = batch.iter().product();
+    let check = p.check_finite;
+    let (lp_view, lp_shared) = prep_kl(&p.log_std, "log_std_p", d, shape, check && rows > 0)?;
+    let (lq_view, lq_shared) = prep_kl(&q.log_std, "log_std_q", d, shape, check && rows > 0)?;
+    let lp_b = match lp_view {
+        Some(v) => Some(super::broadcast("log_std_p", v, "mean_p", shape)?),
+        None => None,
+    };
+    let lq_b = match lq_view {
+        Some(v) => Some(super::broadcast("log_std_q", v, "mean_p", shape)?),
+        None => None,
+    };
+    let mut strides: Vec<&[isize]> = vec![p.mean.strides(), q.mean.strides()];
+    for v in [&lp_b, &lq_b].into_iter().flatten() {
+        strides.push(v.strides());
+    }
+    strides.push(out.view.strides());
+    let layout = Layout::new(batch, d, &strides);
+    let mpb = layout.split(p.mean.view());
+    let n = mpb.len();
+    let starts = row_starts(mpb.iter().map(|b| b.shape()[0]));
+    let mqb = layout.split(q.mean.view());
+    let lpb = layout.split_opt(lp_b, n);
+    let lqb = layout.split_opt(lq_b, n);
+    let ob = layout.split(out.view);
+    let two = to2::<F>;
+    let items: Vec<_> = starts
+        .into_iter()
+        .zip(mpb)
+        .zip(mqb)
+        .zip(lpb.into_iter().zip(lqb))
+        .zip(ob)
+        .map(|((((row0, mp), mq), (lp, lq)), o)| {
+            (row0, two(mp), two(mq), lp.map(two), lq.map(two), o)
+        })
+        .collect();
+    let results = layout.par(par).map(items, |(row0, mp, mq, lp, lq, o)| {
+        let n = mp.nrows();
+        let (mut a, mut b, mut sp, mut sq) =
+            (vec![0.0; n], vec![0.0; n], vec![0.0; n], vec![0.0; n]);
+        let (mut inv, mut kl, mut chk) = (vec![0.0; n], vec![0.0; n], vec![0.0; n]);
+        for j in 0..d {
+            gather_col(mp.column(j), &mut a);
+            gather_col(mq.column(j), &mut b);
+            match &lp {
+                Some(v) => gather_col(v.column(j), &mut sp),
+                None => sp.fill(lp_shared.as_ref().expect("shared")[j]),
+            }
+            match &lq {
+                Some(v) => gather_col(v.column(j), &mut sq),
+                None => sq.fill(lq_shared.as_ref().expect("shared")[j]),
+            }
+            if check {
+                for r in 0..n {
+                    chk[r] += a[r] * 0.0 + b[r] * 0.0 + sp[r] * 0.0 + sq[r] * 0.0;
+                }
+            }
+            inv.iter_mut().zip(&sq).for_each(|(i, &s)| *i = -s);
+            exp_inplace(&mut inv);
+            for r in 0..n {
+                let dd = sq[r] - sp[r];
+                let dm = (a[r] - b[r]) * inv[r];
+                kl[r] += 0.5 * ((-2.0 * dd).exp_m1() + 2.0 * dd) + 0.5 * dm * dm;
+            }
+        }
+        if check && any_nan(&chk) {
+            for r in 0..n {
+                for j in 0..d {
+                    let at = At::RowCol(row0 + r, j);
+                    if !mp[[r, j]].finite() {
+                        return Err(CoreError::non_finite("mean_p", at));
+                    }
+                    if lp.as_ref().is_some_and(|v| !v[[r, j]].finite()) {
+                        return Err(CoreError::non_finite("log_std_p", at));
+                    }
+                    if !mq[[r, j]].finite() {
+                        return Err(CoreError::non_finite("mean_q", at));
+                    }
+                    if lq.as_ref().is_some_and(|v| !v[[r, j]].finite()) {
+                        return Err(CoreError::non_finite("log_std_q", at));
+                    }
+                }
+            }
+        }
+        kl.iter_mut().for_each(|k| {
+            if *k < 0.0 {
+                *k = 0.0
+            }
+        });
+        write_rows(&kl, o);
+        Ok(())
+    });
+    first_error(results)
+}
