@@ -307,7 +307,7 @@ def test_surrogate_matches_eq7(shape):
 
 
 def test_surrogate_grad_central_differences():
-    # Central finite differences of the NumPy transcription of eq. 7
+    # Central finite differences of the NumPy implementation of eq. 7
     # (common practice, no source); elements near the clip kink are skipped.
     rng = np.random.default_rng(7)
     new, old, adv = surrogate_inputs(rng, (400,))

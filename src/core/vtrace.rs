@@ -214,7 +214,7 @@ mod tests {
         }
     }
 
-    /// A plain transcription of Espeholt et al. 2018, section 4.1, recursive
+    /// A plain loop written from Espeholt et al. 2018, section 4.1, recursive
     /// form v_s = V(x_s) + delta_s + gamma c_s (v_{s+1} - V(x_{s+1})), with the
     /// crate's episode-end rule: one stream, one step at a time.
     fn reference(
