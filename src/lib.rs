@@ -11,4 +11,7 @@
 
 pub mod core;
 
+// The binding docs are Python docstrings (reST, `>>>` examples run by the
+// Python suite), not Rust doctests.
+#[cfg(not(doctest))]
 mod bindings;

@@ -15,6 +15,7 @@ from . import _core, ragged
 from ._core import (
     InputError,
     ShapeError,
+    SurrogateResult,
     __version__,
     categorical_entropy,
     categorical_kl,
@@ -23,6 +24,7 @@ from ._core import (
     categorical_mode,
     categorical_sample,
     categorical_score,
+    clipped_surrogate,
     discounted_returns,
     gae,
     gaussian_entropy,
@@ -36,7 +38,12 @@ from ._core import (
     set_num_threads,
     squashed_gaussian_log_prob,
     squashed_gaussian_sample,
+    vtrace,
 )
+
+# Policy-update and off-policy kernels come from _core (above); the running
+# statistics are Python classes over core kernels.
+from .streaming import EpisodeTracker, FinishedEpisodes, ReturnScaler, RunningMoments
 
 # The worker threads of a parent process do not exist in a forked child:
 # start a fresh pool there on first use.
@@ -44,8 +51,13 @@ if hasattr(_os, "register_at_fork"):
     _os.register_at_fork(after_in_child=_core._after_fork_in_child)
 
 __all__ = [
+    "EpisodeTracker",
+    "FinishedEpisodes",
     "InputError",
+    "ReturnScaler",
+    "RunningMoments",
     "ShapeError",
+    "SurrogateResult",
     "__version__",
     "categorical_entropy",
     "categorical_kl",
@@ -54,6 +66,7 @@ __all__ = [
     "categorical_mode",
     "categorical_sample",
     "categorical_score",
+    "clipped_surrogate",
     "discounted_returns",
     "gae",
     "gaussian_entropy",
@@ -68,4 +81,5 @@ __all__ = [
     "set_num_threads",
     "squashed_gaussian_log_prob",
     "squashed_gaussian_sample",
+    "vtrace",
 ]

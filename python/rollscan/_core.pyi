@@ -1,6 +1,6 @@
 """Type stubs for the compiled module ``rollscan._core`` (hand-written)."""
 
-from typing import Any
+from typing import Any, final
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
@@ -86,6 +86,105 @@ def ragged_episode_sums(
     check_finite: bool = True,
     out: _Out = None,
 ) -> NDArray[Any]: ...
+
+# --- Policy-update and off-policy kernels, private kernels of rollscan.streaming
+
+@final
+class SurrogateResult:
+    @property
+    def loss(self) -> float: ...
+    @property
+    def grad(self) -> NDArray[Any]: ...
+    @property
+    def clip_fraction(self) -> float: ...
+    @property
+    def approx_kl(self) -> float: ...
+    @property
+    def ratio_mean(self) -> float: ...
+    @property
+    def ratio_max(self) -> float: ...
+    @property
+    def count(self) -> int: ...
+
+def clipped_surrogate(
+    new_log_prob: ArrayLike,
+    old_log_prob: ArrayLike,
+    advantages: ArrayLike,
+    *,
+    clip: float = 0.2,
+    mask: ArrayLike | None = None,
+    check_finite: bool = True,
+    out: _Out = None,
+) -> SurrogateResult: ...
+def vtrace(
+    behaviour_log_prob: ArrayLike,
+    target_log_prob: ArrayLike,
+    rewards: ArrayLike,
+    values: ArrayLike,
+    terminated: ArrayLike | None = None,
+    *,
+    gamma: float,
+    bootstrap: ArrayLike | None = None,
+    rho_bar: float = 1.0,
+    c_bar: float = 1.0,
+    lam: float = 1.0,
+    truncated: ArrayLike | None = None,
+    next_values: ArrayLike | None = None,
+    time_axis: int = 0,
+    check_finite: bool = True,
+    out: _OutPair = None,
+) -> tuple[NDArray[Any], NDArray[Any]]: ...
+def _batch_moments(
+    batch: ArrayLike, *, check_finite: bool = True
+) -> tuple[int, NDArray[np.float64], NDArray[np.float64]]: ...
+def _merge_moments(
+    count_a: int,
+    mean_a: NDArray[np.float64],
+    m2_a: NDArray[np.float64],
+    count_b: int,
+    mean_b: NDArray[np.float64],
+    m2_b: NDArray[np.float64],
+) -> tuple[int, NDArray[np.float64], NDArray[np.float64]]: ...
+def _affine_clip(
+    x: ArrayLike,
+    shift: NDArray[np.float64],
+    scale: NDArray[np.float64],
+    *,
+    clip: float | None = None,
+    out: _Out = None,
+) -> NDArray[Any]: ...
+def _scale_rewards(
+    rewards: ArrayLike,
+    terminated: ArrayLike | None,
+    truncated: ArrayLike | None,
+    returns: NDArray[np.float64],
+    count: int,
+    mean: float,
+    m2: float,
+    *,
+    gamma: float,
+    eps: float,
+    clip: float | None = None,
+    check_finite: bool = True,
+    out: _Out = None,
+) -> tuple[NDArray[Any], NDArray[np.float64], int, float, float]: ...
+def _track_episodes(
+    rewards: ArrayLike,
+    terminated: ArrayLike | None,
+    truncated: ArrayLike | None,
+    returns: NDArray[np.float64],
+    lengths: NDArray[np.int64],
+    *,
+    check_finite: bool = True,
+) -> tuple[
+    NDArray[np.float64],
+    NDArray[np.int64],
+    NDArray[np.int64],
+    NDArray[np.int64],
+    NDArray[np.bool_],
+    NDArray[np.float64],
+    NDArray[np.int64],
+]: ...
 
 # Action heads (contract section 4). Batch axes lead; the action axis is last.
 def categorical_log_prob(

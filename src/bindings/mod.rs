@@ -5,6 +5,7 @@ mod convert;
 mod errors;
 mod heads;
 mod layout;
+mod policy;
 mod ragged;
 mod returns;
 mod threads;
@@ -19,6 +20,7 @@ fn _core(m: &Bound<'_, PyModule>) -> PyResult<()> {
     threads::register(m)?;
     returns::register(m)?;
     ragged::register(m)?;
+    policy::register(m)?;
     heads::register(m)?;
     Ok(())
 }

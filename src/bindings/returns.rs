@@ -110,12 +110,16 @@ impl<'py, F: Element + Real> TimeMajorArgs<'py, F> {
                         fmt_shape(&stream)
                     )));
                 }
-                let np = py.import("numpy")?;
-                Some(
-                    np.getattr("ascontiguousarray")?
-                        .call1((&b,))?
-                        .cast_into::<PyArrayDyn<F>>()?,
-                )
+                if b.is_c_contiguous() {
+                    Some(b)
+                } else {
+                    let np = py.import("numpy")?;
+                    Some(
+                        np.getattr("ascontiguousarray")?
+                            .call1((&b,))?
+                            .cast_into::<PyArrayDyn<F>>()?,
+                    )
+                }
             }
         };
         Ok(TimeMajorArgs {

@@ -11,14 +11,18 @@
 //!   offending index, never by panicking.
 
 pub mod error;
+pub mod fastmath;
 pub mod finite;
 pub mod float;
 pub mod heads;
 pub mod par;
+pub mod policy;
 pub mod ragged;
+pub mod running;
 pub mod scan;
 pub mod stats;
 pub mod timemajor;
+pub mod vtrace;
 
 pub use error::{At, CoreError, CoreResult};
 pub use float::Real;

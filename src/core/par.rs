@@ -39,6 +39,40 @@ impl Par {
         }
     }
 
+    /// [`Par::for_each`] with per-worker scratch made by `init` (reused across
+    /// items, so hot loops do not allocate per item).
+    pub fn for_each_init<T, S, I, F>(self, items: Vec<T>, init: I, f: F)
+    where
+        T: Send,
+        I: Fn() -> S + Sync + Send,
+        F: Fn(&mut S, T) + Sync + Send,
+    {
+        match self {
+            Par::Seq => {
+                let mut s = init();
+                items.into_iter().for_each(|t| f(&mut s, t))
+            }
+            Par::Rayon => items.into_par_iter().for_each_init(init, f),
+        }
+    }
+
+    /// [`Par::map`] with per-worker scratch made by `init`.
+    pub fn map_init<T, S, R, I, F>(self, items: Vec<T>, init: I, f: F) -> Vec<R>
+    where
+        T: Send,
+        R: Send,
+        I: Fn() -> S + Sync + Send,
+        F: Fn(&mut S, T) -> R + Sync + Send,
+    {
+        match self {
+            Par::Seq => {
+                let mut s = init();
+                items.into_iter().map(|t| f(&mut s, t)).collect()
+            }
+            Par::Rayon => items.into_par_iter().map_init(init, f).collect(),
+        }
+    }
+
     /// Map every item, keeping the input order of results.
     pub fn map<T: Send, R: Send, F: Fn(T) -> R + Sync + Send>(self, items: Vec<T>, f: F) -> Vec<R> {
         match self {

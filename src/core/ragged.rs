@@ -26,7 +26,7 @@
 use super::error::{check_unit, At, CoreError, CoreResult};
 use super::float::Real;
 use super::par::Par;
-use super::scan::{scan_rev_inplace, Carry};
+use super::scan::{affine_rev, scan_rev_with, Carry};
 use ndarray::{s, ArrayView1, ArrayViewMut1};
 
 /// Steps per block of the parallel scan.
@@ -244,13 +244,9 @@ impl<F: Real> Inputs<'_, '_, '_, F> {
         let h1 = self.pieces.offsets[e + 1].min(s1);
         let n = h1 - s0;
         self.terms(s0, h1, &mut x[..n], &mut c[..n]);
-        let factor = if h1 == s1 {
-            c[..n].iter().product()
-        } else {
-            0.0
-        };
-        let head = scan_rev_inplace(&mut x[..n], &c[..n], 0.0);
-        Carry { head, factor }
+        // When the head piece ends inside the block its last c is 0, so the
+        // factor is 0 and the block does not depend on what follows.
+        affine_rev(&x[..n], &c[..n])
     }
 }
 
@@ -265,12 +261,20 @@ where
     }
     let nb = n.div_ceil(BLOCK);
     let bounds = |b: usize| (b * BLOCK, ((b + 1) * BLOCK).min(n));
+    // Per-worker scratch: x, c and the scan's products, one block each.
+    // Sized to the data so a short call does not zero a whole block.
+    let cap = BLOCK.min(n);
+    let init = || {
+        (
+            vec![0.0f64; cap],
+            vec![0.0f64; cap],
+            Vec::<f64>::with_capacity(cap),
+        )
+    };
     // 1. Affine maps of every block but the first (its map is never needed).
-    let maps: Vec<Carry> = par.map((1..nb).collect(), |b| {
+    let maps: Vec<Carry> = par.map_init((1..nb).collect(), init, |(x, c, _), b| {
         let (s0, s1) = bounds(b);
-        let mut x = vec![0.0; s1 - s0];
-        let mut c = vec![0.0; s1 - s0];
-        inp.summary(s0, s1, &mut x, &mut c)
+        inp.summary(s0, s1, &mut x[..s1 - s0], &mut c[..s1 - s0])
     });
     // 2. Incoming carries, right to left. The last block ends a piece.
     let mut carry = vec![0.0f64; nb];
@@ -278,13 +282,12 @@ where
         carry[b] = maps[b].apply(carry[b + 1]);
     }
     // 3. Every block with its carry.
-    par.for_each((0..nb).collect(), |b| {
+    par.for_each_init((0..nb).collect(), init, |(x, c, p), b| {
         let (s0, s1) = bounds(b);
-        let mut x = vec![0.0; s1 - s0];
-        let mut c = vec![0.0; s1 - s0];
-        inp.terms(s0, s1, &mut x, &mut c);
-        scan_rev_inplace(&mut x, &c, carry[b]);
-        emit(s0, &x);
+        let (x, c) = (&mut x[..s1 - s0], &mut c[..s1 - s0]);
+        inp.terms(s0, s1, x, c);
+        scan_rev_with(x, c, carry[b], p);
+        emit(s0, x);
     });
 }
 

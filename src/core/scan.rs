@@ -24,13 +24,22 @@ const LANE_MIN: usize = 256;
 /// `y += prod * carry` (a vectorised pass). The segment split depends only on
 /// `n`, so the result is deterministic.
 pub fn scan_rev_inplace(xy: &mut [f64], c: &[f64], carry: f64) -> f64 {
+    scan_rev_with(xy, c, carry, &mut Vec::new())
+}
+
+/// [`scan_rev_inplace`] with caller-owned scratch for the running products
+/// (grown as needed, never shrunk), so repeated scans do not allocate.
+pub fn scan_rev_with(xy: &mut [f64], c: &[f64], carry: f64, scratch: &mut Vec<f64>) -> f64 {
     let n = xy.len().min(c.len());
     if n < LANE_MIN {
         return scan_serial(&mut xy[..n], &c[..n], carry);
     }
     let m = n / LANES;
     let r0 = n - LANES * m;
-    let mut p = vec![0.0f64; LANES * m];
+    if scratch.len() < LANES * m {
+        scratch.resize(LANES * m, 0.0);
+    }
+    let p = &mut scratch[..LANES * m];
     {
         let (_, body) = xy[..n].split_at_mut(r0);
         let cb = &c[r0..n];
@@ -59,6 +68,40 @@ pub fn scan_rev_inplace(xy: &mut [f64], c: &[f64], carry: f64) -> f64 {
         }
         scan_serial(&mut xy[..r0], &c[..r0], cin)
     }
+}
+
+/// The affine map `y[0] = head + factor * carry` of a segment, without
+/// storing `y`: the same lane-interleaved chains as [`scan_rev_inplace`].
+pub fn affine_rev(x: &[f64], c: &[f64]) -> Carry {
+    let n = x.len().min(c.len());
+    let (m, r0) = if n < LANE_MIN {
+        (0, n)
+    } else {
+        (n / LANES, n - LANES * (n / LANES))
+    };
+    let mut head = 0.0f64;
+    let mut factor = 1.0f64;
+    if m > 0 {
+        let (xb, cb) = (&x[r0..n], &c[r0..n]);
+        let mut acc = [0.0f64; LANES];
+        let mut prod = [1.0f64; LANES];
+        for k in (0..m).rev() {
+            for l in 0..LANES {
+                let i = l * m + k;
+                acc[l] = xb[i] + cont(cb[i], acc[l]);
+                prod[l] *= cb[i];
+            }
+        }
+        for l in (0..LANES).rev() {
+            head = acc[l] + cont(prod[l], head);
+            factor *= prod[l];
+        }
+    }
+    for i in (0..r0).rev() {
+        head = x[i] + cont(c[i], head);
+        factor *= c[i];
+    }
+    Carry { head, factor }
 }
 
 #[inline]
@@ -138,6 +181,25 @@ mod tests {
                     (a[i] - b[i]).abs() <= 1e-12 * b[i].abs().max(1.0),
                     "n={n} i={i}"
                 );
+            }
+        }
+    }
+
+    #[test]
+    fn affine_map_matches_scan() {
+        for &n in &[0usize, 7, 300, 5000] {
+            let x: Vec<f64> = (0..n).map(|i| (i % 13) as f64 - 6.0).collect();
+            let mut c: Vec<f64> = vec![0.999; n];
+            let a = affine_rev(&x, &c);
+            let mut y = x.clone();
+            let full = scan_rev_inplace(&mut y, &c, 1.25);
+            assert!(
+                (a.apply(1.25) - full).abs() <= 1e-9 * full.abs().max(1.0),
+                "n={n}"
+            );
+            if n > 10 {
+                c[n / 2] = 0.0;
+                assert_eq!(affine_rev(&x, &c).factor, 0.0);
             }
         }
     }

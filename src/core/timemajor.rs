@@ -18,6 +18,7 @@
 //! depends on the tiling or on the thread count.
 
 use super::error::{check_unit, At, CoreError, CoreResult};
+use super::fastmath;
 use super::float::Real;
 use super::par::Par;
 use super::stats;
@@ -58,7 +59,12 @@ impl<'a, F: Real> Steps<'a, F> {
     }
 
     /// Shape, rule and (optionally) finiteness checks shared by the kernels.
-    fn validate(&self, need_values: bool, check_finite: bool, par: Par) -> CoreResult<()> {
+    pub(crate) fn validate(
+        &self,
+        need_values: bool,
+        check_finite: bool,
+        par: Par,
+    ) -> CoreResult<()> {
         let shape = self.rewards.shape();
         let same = |name: &'static str, s: Option<&[usize]>| -> CoreResult<()> {
             match s {
@@ -125,11 +131,63 @@ impl<'a, F: Real> Steps<'a, F> {
     }
 }
 
-/// Which recurrence to run.
-#[derive(Debug, Clone, Copy)]
-enum Kind {
-    Returns { gamma: f64 },
-    Gae { gamma: f64, lam: f64 },
+/// Discounted returns: `G_t = r_t + gamma * X_t` (module docs for `X_t`).
+struct ReturnsRule {
+    gamma: f64,
+}
+
+impl StepRule for ReturnsRule {
+    const VALUES: bool = false;
+    #[inline(always)]
+    fn row(&self, row: &Row<'_>, y: &mut [f64], carry: &mut [f64], _aux: &mut [f64]) {
+        let (gamma, last) = (self.gamma, row.last);
+        // The value a cut step bootstraps from: next_values, else the
+        // bootstrap (validation leaves only the last row for it).
+        let fix = row.next_values.unwrap_or(row.values_below);
+        for ((((y, &te), &tr), &fv), cy) in y
+            .iter_mut()
+            .zip(row.te)
+            .zip(row.tr)
+            .zip(fix)
+            .zip(carry.iter_mut())
+        {
+            // xv = 0 if te, else fv if (tr or last), else cy; as bit
+            // masks so the loop vectorises and NaN cannot cross an end.
+            let fix = mask(tr | last);
+            let xv = f64::from_bits((fv.to_bits() & fix) | (cy.to_bits() & !fix));
+            let g = *y + gamma * keep(xv, mask(!te));
+            *y = g;
+            *cy = g;
+        }
+    }
+}
+
+/// GAE: `A_t = delta_t + gamma * lam * (1 - end_t) * A_{t+1}`.
+struct GaeRule {
+    gamma: f64,
+    lam: f64,
+}
+
+impl StepRule for GaeRule {
+    const VALUES: bool = true;
+    #[inline(always)]
+    fn row(&self, row: &Row<'_>, y: &mut [f64], carry: &mut [f64], _aux: &mut [f64]) {
+        let (gamma, gl) = (self.gamma, self.gamma * self.lam);
+        let vnext = row.next_values.unwrap_or(row.values_below);
+        for (((((y, &te), &tr), &v), &vn), cy) in y
+            .iter_mut()
+            .zip(row.te)
+            .zip(row.tr)
+            .zip(row.values)
+            .zip(vnext)
+            .zip(carry.iter_mut())
+        {
+            let d = *y + gamma * keep(vn, mask(!te)) - v;
+            let a = d + keep(gl * *cy, mask(!(te | tr)));
+            *y = a;
+            *cy = a;
+        }
+    }
 }
 
 /// Discounted returns `G_t = r_t + gamma * X_t` (module docs for `X_t`),
@@ -144,7 +202,15 @@ pub fn discounted_returns<F: Real>(
     check_unit("gamma", gamma)?;
     steps.validate(false, check_finite, par)?;
     check_out("out", out.shape(), steps.rewards.shape())?;
-    run(steps, Kind::Returns { gamma }, out, None, par);
+    run(
+        steps,
+        &[],
+        &ReturnsRule { gamma },
+        (Store::Y, None),
+        out,
+        None,
+        par,
+    );
     Ok(())
 }
 
@@ -184,7 +250,9 @@ pub fn gae<F: Real>(
     }
     run(
         steps,
-        Kind::Gae { gamma, lam },
+        &[],
+        &GaeRule { gamma, lam },
+        (Store::Y, Some(Store::YPlusV)),
         adv.view_mut(),
         Some(ret),
         par,
@@ -195,7 +263,7 @@ pub fn gae<F: Real>(
     Ok(())
 }
 
-fn check_out(name: &'static str, got: &[usize], want: &[usize]) -> CoreResult<()> {
+pub(crate) fn check_out(name: &'static str, got: &[usize], want: &[usize]) -> CoreResult<()> {
     if got != want {
         return Err(CoreError::shape_mismatch(
             name,
@@ -227,13 +295,69 @@ fn block_width(t: usize, m: usize, par: Par) -> usize {
     m.div_ceil(want_blocks).clamp(1, 256)
 }
 
-fn run<F: Real>(
+/// The gathered inputs of one row of a block of `w` streams, in `f64`.
+pub(crate) struct Row<'s> {
+    /// This is the last row of the buffer (`t = T - 1`).
+    pub last: bool,
+    /// `V(s_t)` (empty unless the rule gathers values).
+    pub values: &'s [f64],
+    /// `V(s_{t+1})` from the values array: the next row, or the bootstrap at
+    /// the last row (empty unless the rule gathers values; then the bootstrap).
+    pub values_below: &'s [f64],
+    /// `next_values[t]`, if given.
+    pub next_values: Option<&'s [f64]>,
+    /// `terminated[t]` / `truncated[t]` (all false when not given).
+    pub te: &'s [bool],
+    /// See `te`.
+    pub tr: &'s [bool],
+    /// The extra per-step inputs of the rule, this row.
+    pub extra: [&'s [f64]; MAX_EXTRA],
+}
+
+/// One row of a reverse recurrence over a block of streams. The tile loop
+/// (gathering, carries, tiling, parallel split, storing) is shared; a rule
+/// only advances one row, in one branch-free pass over the `w` independent
+/// streams so the loop vectorises.
+///
+/// The bootstrap rule `V'_t` reads `0` where `te`, else
+/// `row.next_values.unwrap_or(row.values_below)`.
+pub(crate) trait StepRule: Sync {
+    /// Whether `values` are gathered (and `Row::values*` filled).
+    const VALUES: bool;
+    /// Advance one row: `y` holds `r_t` on entry and `y_t` on exit; `carry`
+    /// holds `y_{t+1}` on entry (0 below the last row) and must hold `y_t` on
+    /// exit. A per-step by-product may go to `aux` (stored with [`Store::Aux`]).
+    fn row(&self, row: &Row<'_>, y: &mut [f64], carry: &mut [f64], aux: &mut [f64]);
+}
+
+/// What an output array receives.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub(crate) enum Store {
+    /// The recurrence value `y_t`.
+    Y,
+    /// `y_t + V(s_t)`.
+    YPlusV,
+    /// The rule's by-product.
+    Aux,
+}
+
+/// The most extra per-step inputs a rule may read.
+pub(crate) const MAX_EXTRA: usize = 2;
+
+/// Run `rule` over all streams into `out_a` (and `out_b`), each receiving
+/// what `stores` says. `extra` are `[T, M]` views of the rule's own inputs
+/// (already validated by the caller).
+pub(crate) fn run<F: Real, R: StepRule>(
     steps: &Steps<'_, F>,
-    kind: Kind,
+    extra: &[ArrayView2<'_, F>],
+    rule: &R,
+    stores: (Store, Option<Store>),
     out_a: ArrayViewMut2<'_, F>,
     out_b: Option<ArrayViewMut2<'_, F>>,
     par: Par,
 ) {
+    debug_assert!(extra.len() <= MAX_EXTRA);
+    debug_assert_eq!(stores.1.is_some(), out_b.is_some());
     let (t, m) = steps.dims();
     if t == 0 || m == 0 {
         return;
@@ -250,7 +374,9 @@ fn run<F: Real>(
         .enumerate()
         .map(|(i, (a, b))| (i * w, a, b))
         .collect();
-    par.for_each(items, |(m0, a, b)| run_block(steps, kind, m0, a, b));
+    par.for_each(items, |(m0, a, b)| {
+        run_block(steps, extra, rule, stores, m0, a, b)
+    });
 }
 
 /// Cut a `[T, M]` view into column blocks of width `w` (the last may be narrower).
@@ -266,14 +392,11 @@ fn split_cols<F>(mut v: ArrayViewMut2<'_, F>, w: usize) -> Vec<ArrayViewMut2<'_,
 }
 
 /// One block of streams `[m0, m0 + w)`, all rows, bottom-up in tiles.
-///
-/// Each tile is converted to `f64` scratch row by row, then every row is one
-/// branch-free pass over `w` independent streams (the loop vectorises), then
-/// the results are stored. `carry_y` / `carry_v` hold `y` and `V` of the row
-/// just below the tile, so tiles chain exactly.
-fn run_block<F: Real>(
+fn run_block<F: Real, R: StepRule>(
     steps: &Steps<'_, F>,
-    kind: Kind,
+    extra: &[ArrayView2<'_, F>],
+    rule: &R,
+    stores: (Store, Option<Store>),
     m0: usize,
     mut out_a: ArrayViewMut2<'_, F>,
     mut out_b: Option<ArrayViewMut2<'_, F>>,
@@ -282,29 +405,30 @@ fn run_block<F: Real>(
     let w = out_a.ncols();
     let cols = s![.., m0..m0 + w];
     let r = steps.rewards.slice(cols);
-    let use_v = matches!(kind, Kind::Gae { .. });
-    let v = steps
-        .values
-        .as_ref()
-        .filter(|_| use_v)
-        .map(|a| a.slice(cols));
+    let v = steps.values.as_ref().map(|a| a.slice(cols));
     let nv = steps.next_values.as_ref().map(|a| a.slice(cols));
     let term = steps.terminated.as_ref().map(|a| a.slice(cols));
     let trunc = steps.truncated.as_ref().map(|a| a.slice(cols));
+    let ex: Vec<ArrayView2<'_, F>> = extra.iter().map(|a| a.slice(cols)).collect();
     let boot: Vec<f64> = match &steps.bootstrap {
         Some(b) => b.slice(s![m0..m0 + w]).iter().map(|x| x.to_f64()).collect(),
         None => vec![0.0; w],
     };
+    let use_v = R::VALUES;
+    let use_aux = stores.0 == Store::Aux || stores.1 == Some(Store::Aux);
 
-    let rows_per_tile = (TILE / w).max(1);
+    let rows_per_tile = (TILE / w).clamp(1, t_len.max(1));
     let cap = rows_per_tile * w;
     let mut xs = vec![0.0f64; cap];
     let mut vs = vec![0.0f64; if use_v { cap } else { 0 }];
     let mut nvs = vec![0.0f64; if nv.is_some() { cap } else { 0 }];
+    let mut exs: Vec<Vec<f64>> = ex.iter().map(|_| vec![0.0f64; cap]).collect();
+    let mut aux = vec![0.0f64; if use_aux { cap } else { 0 }];
     let mut tes = vec![false; cap];
     let mut trs = vec![false; cap];
+    // y and V at the row just below the current tile.
     let mut carry_y = vec![0.0f64; w];
-    let mut carry_v = boot.clone();
+    let mut carry_v = boot;
 
     let mut t1 = t_len;
     while t1 > 0 {
@@ -314,82 +438,135 @@ fn run_block<F: Real>(
         let rs = s![t0..t1, ..];
         gather(&r.slice(rs), &mut xs[..n]);
         if let Some(v) = &v {
-            gather(&v.slice(rs), &mut vs[..n]);
+            if use_v {
+                gather(&v.slice(rs), &mut vs[..n]);
+            }
         }
         if let Some(nv) = &nv {
             gather(&nv.slice(rs), &mut nvs[..n]);
         }
+        for (e, buf) in ex.iter().zip(exs.iter_mut()) {
+            gather(&e.slice(rs), &mut buf[..n]);
+        }
         gather_flags(term.as_ref().map(|a| a.slice(rs)), &mut tes[..n]);
         gather_flags(trunc.as_ref().map(|a| a.slice(rs)), &mut trs[..n]);
 
-        for i in (0..rows).rev() {
-            let row = i * w..(i + 1) * w;
-            let x = &mut xs[row.clone()];
-            let (te, tr) = (&tes[row.clone()], &trs[row.clone()]);
-            match kind {
-                Kind::Returns { gamma } => {
-                    let last = t0 + i + 1 == t_len;
-                    // The value a cut step bootstraps from.
-                    let fix: &[f64] = if !nvs.is_empty() {
-                        &nvs[row.clone()]
-                    } else {
-                        &boot
-                    };
-                    for ((((y, &te), &tr), &fv), cy) in x
-                        .iter_mut()
-                        .zip(te)
-                        .zip(tr)
-                        .zip(fix)
-                        .zip(carry_y.iter_mut())
-                    {
-                        let xv = if te {
-                            0.0
-                        } else if tr || last {
-                            fv
-                        } else {
-                            *cy
-                        };
-                        let g = *y + gamma * xv;
-                        *y = g;
-                        *cy = g;
-                    }
-                }
-                Kind::Gae { gamma, lam } => {
-                    let gl = gamma * lam;
-                    let vt = &vs[row.clone()];
-                    let vnext: &[f64] = if !nvs.is_empty() {
-                        &nvs[row.clone()]
-                    } else if i + 1 < rows {
-                        &vs[(i + 1) * w..(i + 2) * w]
-                    } else {
-                        &carry_v
-                    };
-                    for (((((y, &te), &tr), &v), &vn), cy) in x
-                        .iter_mut()
-                        .zip(te)
-                        .zip(tr)
-                        .zip(vt)
-                        .zip(vnext)
-                        .zip(carry_y.iter_mut())
-                    {
-                        let vp = if te { 0.0 } else { vn };
-                        let d = *y + gamma * vp - v;
-                        let a = if te || tr { d } else { d + gl * *cy };
-                        *y = a;
-                        *cy = a;
-                    }
-                }
-            }
-        }
+        let tile = Tile {
+            rows,
+            w,
+            last_row: t0 + rows == t_len,
+            xs: &mut xs[..n],
+            vs: if use_v { &vs[..n] } else { &[] },
+            nvs: if nvs.is_empty() { &[] } else { &nvs[..n] },
+            exs: &exs,
+            aux: if use_aux { &mut aux[..n] } else { &mut [] },
+            tes: &tes[..n],
+            trs: &trs[..n],
+            carry_y: &mut carry_y,
+            carry_v: &carry_v,
+        };
+        tile_rows_dispatch(rule, tile);
         if use_v {
             carry_v.copy_from_slice(&vs[..w]);
         }
-        scatter(&xs[..n], None, &mut out_a.slice_mut(rs));
-        if let Some(b) = &mut out_b {
-            scatter(&xs[..n], Some(&vs[..n]), &mut b.slice_mut(rs));
+        let store = |what: Store, dst: &mut ArrayViewMut2<'_, F>| match what {
+            Store::Y => scatter(&xs[..n], None, dst),
+            Store::YPlusV => scatter(&xs[..n], Some(&vs[..n]), dst),
+            Store::Aux => scatter(&aux[..n], None, dst),
+        };
+        store(stores.0, &mut out_a.slice_mut(rs));
+        if let (Some(b), Some(what)) = (&mut out_b, stores.1) {
+            store(what, &mut b.slice_mut(rs));
         }
         t1 = t0;
     }
+}
+
+/// The scratch of one tile (`rows x w`, row-major) and the carries below it.
+struct Tile<'s> {
+    rows: usize,
+    w: usize,
+    /// The tile's bottom row is the buffer's last row.
+    last_row: bool,
+    xs: &'s mut [f64],
+    vs: &'s [f64],
+    nvs: &'s [f64],
+    exs: &'s [Vec<f64>],
+    aux: &'s mut [f64],
+    tes: &'s [bool],
+    trs: &'s [bool],
+    carry_y: &'s mut [f64],
+    carry_v: &'s [f64],
+}
+
+/// Run the rule over the rows of one tile, bottom-up.
+#[inline(always)]
+fn tile_rows<R: StepRule>(rule: &R, t: Tile<'_>) {
+    let w = t.w;
+    let empty: &[f64] = &[];
+    for i in (0..t.rows).rev() {
+        let row = i * w..(i + 1) * w;
+        let mut extra = [empty; MAX_EXTRA];
+        for (k, buf) in t.exs.iter().enumerate() {
+            extra[k] = &buf[row.clone()];
+        }
+        let (values, values_below): (&[f64], &[f64]) = if !R::VALUES {
+            (empty, t.carry_v)
+        } else if i + 1 < t.rows {
+            (&t.vs[row.clone()], &t.vs[(i + 1) * w..(i + 2) * w])
+        } else {
+            (&t.vs[row.clone()], t.carry_v)
+        };
+        let inputs = Row {
+            last: t.last_row && i + 1 == t.rows,
+            values,
+            values_below,
+            next_values: if t.nvs.is_empty() {
+                None
+            } else {
+                Some(&t.nvs[row.clone()])
+            },
+            te: &t.tes[row.clone()],
+            tr: &t.trs[row.clone()],
+            extra,
+        };
+        let a: &mut [f64] = if t.aux.is_empty() {
+            &mut []
+        } else {
+            &mut t.aux[row.clone()]
+        };
+        rule.row(&inputs, &mut t.xs[row], t.carry_y, a);
+    }
+}
+
+/// [`tile_rows`], in its AVX2 copy when the CPU allows (same bits).
+fn tile_rows_dispatch<R: StepRule>(rule: &R, t: Tile<'_>) {
+    #[cfg(target_arch = "x86_64")]
+    {
+        #[target_feature(enable = "avx2")]
+        fn avx2<R: StepRule>(rule: &R, t: Tile<'_>) {
+            tile_rows(rule, t)
+        }
+        if fastmath::wide_ok() {
+            // SAFETY: `avx2` only requires the CPU to support AVX2, which
+            // `wide_ok` has just confirmed at run time.
+            return unsafe { avx2(rule, t) };
+        }
+    }
+    tile_rows(rule, t)
+}
+
+/// All ones when `b`, else zero: a lane mask for [`keep`].
+#[inline(always)]
+fn mask(b: bool) -> u64 {
+    (b as u64).wrapping_neg()
+}
+
+/// `x` where the mask is set, `+0.0` elsewhere (a select that vectorises and
+/// never turns `0 * NaN` into NaN).
+#[inline(always)]
+fn keep(x: f64, m: u64) -> f64 {
+    f64::from_bits(x.to_bits() & m)
 }
 
 /// Copy a `[rows, w]` view into row-major `f64` scratch.
@@ -466,7 +643,11 @@ pub fn first_non_finite_2d<F: Real>(a: &ArrayView2<'_, F>, par: Par) -> Option<(
     first_where(a, par, |x: &F| !x.finite(), super::finite::all_finite)
 }
 
-fn check_finite_2d<F: Real>(name: &'static str, a: &ArrayView2<'_, F>, par: Par) -> CoreResult<()> {
+pub(crate) fn check_finite_2d<F: Real>(
+    name: &'static str,
+    a: &ArrayView2<'_, F>,
+    par: Par,
+) -> CoreResult<()> {
     match first_non_finite_2d(a, par) {
         Some((t, m)) => Err(CoreError::non_finite(name, At::TimeStream(t, m))),
         None => Ok(()),
@@ -514,7 +695,7 @@ mod tests {
     use super::*;
     use ndarray::{Array1, Array2, ShapeBuilder};
 
-    /// A direct transcription of the definitions, one stream at a time.
+    /// Written straight from the definitions, one stream at a time.
     #[allow(clippy::too_many_arguments)]
     fn reference(
         r: &Array2<f64>,

@@ -26,7 +26,7 @@ from typing import Callable
 import numpy as np
 
 #: Modules of this package that contribute cases, in print order.
-MODULES = ("core", "heads", "policy")
+MODULES = ("core", "heads", "policy", "stored")
 
 
 @dataclass
@@ -205,7 +205,19 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--quick", action="store_true", help="small sizes and short timing budgets")
     p.add_argument("--json", action="store_true", help="print machine-readable JSON on stdout")
     p.add_argument("--only", choices=MODULES, help="run one group of cases")
-    a = p.parse_args(argv)
+    p.add_argument(
+        "--stored",
+        action="store_true",
+        help="instead: steps/s of `rollscan process` on >= 5*10^7 steps, local engine vs "
+        "Dask with 1 and 2 local workers (rollscan.bench.scaleout; remaining options go there)",
+    )
+    a, rest = p.parse_known_args(argv)
+    if a.stored:
+        from .scaleout import main as scaleout
+
+        return scaleout(rest)
+    if rest:
+        p.error(f"unrecognized arguments: {' '.join(rest)}")
     import rollscan
 
     print(

@@ -1,0 +1,675 @@
+//! The clipped surrogate objective of a policy update (Schulman et al. 2017,
+//! eq. 7), its gradient with respect to the new log-probabilities, and the
+//! usual diagnostics, in one pass.
+//!
+//! Per selected element, with `r = exp(new_log_prob - old_log_prob)`:
+//!
+//! ```text
+//! s1   = r * A
+//! s2   = clamp(r, 1 - clip, 1 + clip) * A
+//! loss = -mean(min(s1, s2))
+//! grad = -r * A / n   where s1 <= s2 (the unclipped term is the minimum)
+//!      = 0            where the clipped term is strictly smaller, or masked out
+//! clip_fraction = mean(|r - 1| > clip)
+//! approx_kl     = mean((r - 1) - log r)
+//! ```
+//!
+//! `n` is the number of selected elements. Sums run in `f64` over fixed,
+//! data-defined blocks combined in block order: bit-identical for any thread
+//! count.
+
+use super::error::{At, CoreError, CoreResult};
+use super::fastmath;
+use super::float::Real;
+use super::par::Par;
+use ndarray::{ArrayView1, ArrayViewD, ArrayViewMutD, Axis, IxDyn};
+
+/// Elements per reduction block.
+const BLOCK: usize = 1 << 14;
+
+/// The scalar results of [`clipped_surrogate`].
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Surrogate {
+    /// `-mean(min(s1, s2))`.
+    pub loss: f64,
+    /// Fraction of selected elements with `|r - 1| > clip`.
+    pub clip_fraction: f64,
+    /// `mean((r - 1) - log r)`, >= 0.
+    pub approx_kl: f64,
+    /// `mean(r)`.
+    pub ratio_mean: f64,
+    /// `max(r)`.
+    pub ratio_max: f64,
+    /// Number of selected elements.
+    pub count: usize,
+}
+
+#[derive(Clone, Copy)]
+struct Partial {
+    obj: f64,
+    kl: f64,
+    ratio: f64,
+    ratio_max: f64,
+    clipped: f64,
+}
+
+impl Partial {
+    const ZERO: Partial = Partial {
+        obj: 0.0,
+        kl: 0.0,
+        ratio: 0.0,
+        ratio_max: f64::NEG_INFINITY,
+        clipped: 0.0,
+    };
+    fn add(self, o: Partial) -> Partial {
+        Partial {
+            obj: self.obj + o.obj,
+            kl: self.kl + o.kl,
+            ratio: self.ratio + o.ratio,
+            ratio_max: max_nan(self.ratio_max, o.ratio_max),
+            clipped: self.clipped + o.clipped,
+        }
+    }
+}
+
+/// `max` that keeps a NaN (so `check_finite=False` propagates it).
+#[inline(always)]
+fn max_nan(a: f64, b: f64) -> f64 {
+    if a.is_nan() || b.is_nan() {
+        f64::NAN
+    } else {
+        a.max(b)
+    }
+}
+
+/// Cut `[len, ...]` views along axis 0 into blocks of about [`BLOCK`]
+/// elements. The boundaries depend on the shape only.
+fn row_blocks(shape: &[usize]) -> Vec<(usize, usize)> {
+    let len = shape.first().copied().unwrap_or(1);
+    let inner: usize = shape.iter().skip(1).product::<usize>().max(1);
+    let per = (BLOCK / inner).max(1);
+    (0..len)
+        .step_by(per)
+        .map(|a| (a, (a + per).min(len)))
+        .collect()
+}
+
+/// The clipped surrogate of the module docs. All arrays share one shape of
+/// at least one axis; `grad` receives `d loss / d new_log_prob`.
+#[allow(clippy::too_many_arguments)]
+pub fn clipped_surrogate<F: Real>(
+    new_log_prob: ArrayViewD<'_, F>,
+    old_log_prob: ArrayViewD<'_, F>,
+    advantages: ArrayViewD<'_, F>,
+    mask: Option<ArrayViewD<'_, bool>>,
+    clip: f64,
+    check_finite: bool,
+    mut grad: ArrayViewMutD<'_, F>,
+    par: Par,
+) -> CoreResult<Surrogate> {
+    if !(clip.is_finite() && clip >= 0.0) {
+        return Err(CoreError::input(
+            "clip",
+            format!("must be finite and >= 0, got {clip}"),
+        ));
+    }
+    let shape = new_log_prob.shape().to_vec();
+    let same = |name: &'static str, s: &[usize]| -> CoreResult<()> {
+        if s != shape.as_slice() {
+            return Err(CoreError::shape_mismatch(
+                name,
+                s,
+                "new_log_prob",
+                &shape,
+                "they must have the same shape",
+            ));
+        }
+        Ok(())
+    };
+    same("old_log_prob", old_log_prob.shape())?;
+    same("advantages", advantages.shape())?;
+    if let Some(m) = &mask {
+        same("mask", m.shape())?;
+    }
+    if grad.shape() != shape.as_slice() {
+        return Err(CoreError::shape_mismatch(
+            "out",
+            grad.shape(),
+            "new_log_prob",
+            &shape,
+            "out must have the output shape",
+        ));
+    }
+    if shape.is_empty() {
+        return Err(CoreError::input(
+            "new_log_prob",
+            "must have at least one axis",
+        ));
+    }
+    if check_finite {
+        for (name, a) in [
+            ("new_log_prob", &new_log_prob),
+            ("old_log_prob", &old_log_prob),
+            ("advantages", &advantages),
+        ] {
+            if let Some(i) = first_non_finite(a, par) {
+                return Err(CoreError::non_finite(name, At::Flat(i)));
+            }
+        }
+    }
+    let blocks = row_blocks(&shape);
+    let count = match &mask {
+        None => new_log_prob.len(),
+        Some(m) => par
+            .map(blocks.clone(), |(a, b)| {
+                m.slice_axis(Axis(0), (a..b).into())
+                    .iter()
+                    .filter(|&&k| k)
+                    .count()
+            })
+            .into_iter()
+            .sum(),
+    };
+    if count == 0 {
+        return Err(match mask {
+            None => CoreError::input("new_log_prob", "is empty: the mean is undefined"),
+            Some(_) => CoreError::input("mask", "selects no element: the mean is undefined"),
+        });
+    }
+    let c = Consts {
+        lo: 1.0 - clip,
+        hi: 1.0 + clip,
+        clip,
+        inv_n: 1.0 / count as f64,
+    };
+    let inv_n = c.inv_n;
+
+    // Each block owns its slice of `grad`, so the blocks can run in parallel.
+    let mut grads = Vec::with_capacity(blocks.len());
+    let mut rest = grad.view_mut();
+    for &(a, b) in &blocks {
+        let (head, tail) = rest.split_at(Axis(0), b - a);
+        grads.push(((a, b), head));
+        rest = tail;
+    }
+    let parts = par.map(grads, |((a, b), mut g)| {
+        let sl = |x: &ArrayViewD<'_, F>| {
+            x.slice_axis(Axis(0), (a..b).into())
+                .iter()
+                .copied()
+                .collect::<Vec<F>>()
+        };
+        let (nl, ol, ad) = (
+            new_log_prob.slice_axis(Axis(0), (a..b).into()),
+            old_log_prob.slice_axis(Axis(0), (a..b).into()),
+            advantages.slice_axis(Axis(0), (a..b).into()),
+        );
+        let m = mask.as_ref().map(|m| m.slice_axis(Axis(0), (a..b).into()));
+        // Contiguous blocks are read in place; others are copied into block
+        // scratch in logical order, so both give the same bits.
+        let (nl_o, ol_o, ad_o);
+        let nl_s = match nl.as_slice() {
+            Some(x) => x,
+            None => {
+                nl_o = sl(&new_log_prob);
+                &nl_o[..]
+            }
+        };
+        let ol_s = match ol.as_slice() {
+            Some(x) => x,
+            None => {
+                ol_o = sl(&old_log_prob);
+                &ol_o[..]
+            }
+        };
+        let ad_s = match ad.as_slice() {
+            Some(x) => x,
+            None => {
+                ad_o = sl(&advantages);
+                &ad_o[..]
+            }
+        };
+        let m_o;
+        let m_s = match &m {
+            None => None,
+            Some(v) => match v.as_slice() {
+                Some(x) => Some(x),
+                None => {
+                    m_o = v.iter().copied().collect::<Vec<bool>>();
+                    Some(&m_o[..])
+                }
+            },
+        };
+        match g.as_slice_mut() {
+            Some(gs) => block_dispatch(nl_s, ol_s, ad_s, m_s, gs, &c),
+            None => {
+                let mut gs = vec![F::from_f64(0.0); nl_s.len()];
+                let p = block_dispatch(nl_s, ol_s, ad_s, m_s, &mut gs, &c);
+                g.iter_mut().zip(gs).for_each(|(o, v)| *o = v);
+                p
+            }
+        }
+    });
+    let tot = parts.into_iter().fold(Partial::ZERO, Partial::add);
+    Ok(Surrogate {
+        loss: -tot.obj * inv_n,
+        clip_fraction: tot.clipped * inv_n,
+        approx_kl: tot.kl * inv_n,
+        ratio_mean: tot.ratio * inv_n,
+        ratio_max: tot.ratio_max,
+        count,
+    })
+}
+
+/// The per-call constants of the block kernel.
+struct Consts {
+    lo: f64,
+    hi: f64,
+    clip: f64,
+    inv_n: f64,
+}
+
+/// Accumulator lanes of the block kernel: independent partial sums let the
+/// loop vectorise; lanes are combined in a fixed order.
+const LANES: usize = 8;
+
+/// One element from its log-ratio and ratio: `(grad, objective, kl term,
+/// ratio, clipped)`, zeros where not selected.
+#[inline(always)]
+fn element(log_r: f64, r: f64, a: f64, sel: bool, c: &Consts) -> (f64, f64, f64, f64, f64) {
+    let s1 = r * a;
+    // Explicit comparisons (not `clamp`, whose bounds assertion would keep
+    // the loop from vectorising); a NaN passes through.
+    #[allow(clippy::manual_clamp)]
+    let rc = if r < c.lo {
+        c.lo
+    } else if r > c.hi {
+        c.hi
+    } else {
+        r
+    };
+    let s2 = rc * a;
+    // Ties (r inside the range, or A = 0) take the unclipped branch; a NaN
+    // fails `s2 < s1` and so reaches the gradient.
+    let clipped_min = s2 < s1;
+    let obj = if clipped_min { s2 } else { s1 };
+    let d = if clipped_min { 0.0 } else { -s1 * c.inv_n };
+    // (r - 1) - log r >= 0 exactly; only rounding (r near 1) can push it
+    // below, so clip that noise (a NaN passes).
+    let kl_t = (r - 1.0) - log_r;
+    let kl = if kl_t < 0.0 { 0.0 } else { kl_t };
+    let cf = if (r - 1.0).abs() > c.clip { 1.0 } else { 0.0 };
+    if sel {
+        (d, obj, kl, r, cf)
+    } else {
+        (0.0, 0.0, 0.0, 0.0, 0.0)
+    }
+}
+
+/// [`block_kernel`], in its AVX2 copy when the CPU allows (same bits).
+fn block_dispatch<F: Real>(
+    nl: &[F],
+    ol: &[F],
+    ad: &[F],
+    m: Option<&[bool]>,
+    g: &mut [F],
+    c: &Consts,
+) -> Partial {
+    #[cfg(target_arch = "x86_64")]
+    {
+        #[target_feature(enable = "avx2")]
+        fn avx2<F: Real>(
+            nl: &[F],
+            ol: &[F],
+            ad: &[F],
+            m: Option<&[bool]>,
+            g: &mut [F],
+            c: &Consts,
+        ) -> Partial {
+            block_kernel(nl, ol, ad, m, g, c)
+        }
+        if fastmath::wide_ok() {
+            // SAFETY: `avx2` only requires the CPU to support AVX2, which
+            // `wide_ok` has just confirmed at run time.
+            return unsafe { avx2(nl, ol, ad, m, g, c) };
+        }
+    }
+    block_kernel(nl, ol, ad, m, g, c)
+}
+
+/// One block of contiguous elements (logical order): writes `g`, returns the
+/// block's sums. Element `i` goes to lane `i % LANES`.
+#[inline(always)]
+fn block_kernel<F: Real>(
+    nl: &[F],
+    ol: &[F],
+    ad: &[F],
+    m: Option<&[bool]>,
+    g: &mut [F],
+    c: &Consts,
+) -> Partial {
+    let n = g.len();
+    let (nl, ol, ad) = (&nl[..n], &ol[..n], &ad[..n]);
+    // Groups of LANES independent elements (a fixed inner loop the compiler
+    // unrolls and vectorises), then the tail; element i always lands in
+    // lane i % LANES.
+    let mut acc = Acc {
+        obj: [0.0; LANES],
+        kl: [0.0; LANES],
+        ratio: [0.0; LANES],
+        clipped: [0.0; LANES],
+        rmax: [f64::NEG_INFINITY; LANES],
+    };
+    let full = n / LANES * LANES;
+    let mut lr = [0.0f64; LANES];
+    let mut adv = [0.0f64; LANES];
+    let mut sel = [true; LANES];
+    let mut d = [0.0f64; LANES];
+    for base in (0..full).step_by(LANES) {
+        let (a, b, e) = (
+            &nl[base..base + LANES],
+            &ol[base..base + LANES],
+            &ad[base..base + LANES],
+        );
+        for l in 0..LANES {
+            lr[l] = a[l].to_f64() - b[l].to_f64();
+            adv[l] = e[l].to_f64();
+        }
+        if let Some(m) = m {
+            sel.copy_from_slice(&m[base..base + LANES]);
+        }
+        group(&mut acc, &lr, &adv, &sel, &mut d, c);
+        for (o, &v) in g[base..base + LANES].iter_mut().zip(&d) {
+            *o = F::from_f64(v);
+        }
+    }
+    if full < n {
+        // The tail, padded with unselected elements (which add nothing).
+        let len = n - full;
+        lr = [0.0; LANES];
+        adv = [0.0; LANES];
+        sel = [false; LANES];
+        for l in 0..len {
+            lr[l] = nl[full + l].to_f64() - ol[full + l].to_f64();
+            adv[l] = ad[full + l].to_f64();
+            sel[l] = m.is_none_or(|m| m[full + l]);
+        }
+        group(&mut acc, &lr, &adv, &sel, &mut d, c);
+        for l in 0..len {
+            g[full + l] = F::from_f64(d[l]);
+        }
+    }
+    let mut p = Partial::ZERO;
+    for l in 0..LANES {
+        p = p.add(Partial {
+            obj: acc.obj[l],
+            kl: acc.kl[l],
+            ratio: acc.ratio[l],
+            ratio_max: acc.rmax[l],
+            clipped: acc.clipped[l],
+        });
+    }
+    p
+}
+
+/// Per-lane partial sums of [`block_kernel`].
+struct Acc {
+    obj: [f64; LANES],
+    kl: [f64; LANES],
+    ratio: [f64; LANES],
+    clipped: [f64; LANES],
+    rmax: [f64; LANES],
+}
+
+/// One group of [`LANES`] elements: fixed-size arrays, so the loops unroll and
+/// vectorise (and, being inlined, inherit the caller's target features).
+#[inline(always)]
+fn group(
+    acc: &mut Acc,
+    lr: &[f64; LANES],
+    adv: &[f64; LANES],
+    sel: &[bool; LANES],
+    d: &mut [f64; LANES],
+    c: &Consts,
+) {
+    let mut ratio_l = [0.0f64; LANES];
+    for l in 0..LANES {
+        ratio_l[l] = fastmath::exp(lr[l]);
+    }
+    for l in 0..LANES {
+        let (dl, o, k, r, cf) = element(lr[l], ratio_l[l], adv[l], sel[l], c);
+        d[l] = dl;
+        acc.obj[l] += o;
+        acc.kl[l] += k;
+        acc.ratio[l] += r;
+        acc.clipped[l] += cf;
+        let rm = if sel[l] { r } else { f64::NEG_INFINITY };
+        // Sticky NaN: once a lane's max is NaN it stays NaN.
+        acc.rmax[l] = if rm > acc.rmax[l] || rm.is_nan() {
+            rm
+        } else {
+            acc.rmax[l]
+        };
+    }
+}
+
+/// The first non-finite element in logical row-major order.
+fn first_non_finite<F: Real>(a: &ArrayViewD<'_, F>, par: Par) -> Option<usize> {
+    if let Some(sl) = a.as_slice() {
+        let chunks: Vec<(usize, &[F])> = sl
+            .chunks(BLOCK)
+            .enumerate()
+            .map(|(i, c)| (i * BLOCK, c))
+            .collect();
+        return par
+            .map(chunks, |(off, c)| {
+                if super::finite::all_finite(c) {
+                    None
+                } else {
+                    c.iter().position(|x| !x.finite()).map(|k| off + k)
+                }
+            })
+            .into_iter()
+            .flatten()
+            .next();
+    }
+    a.iter().position(|x| !x.finite())
+}
+
+/// A 0-d or N-d view as a view of at least one axis (a scalar becomes `[1]`).
+pub fn at_least_1d<T>(a: ArrayViewD<'_, T>) -> ArrayViewD<'_, T> {
+    if a.ndim() == 0 {
+        a.insert_axis(Axis(0))
+    } else {
+        a
+    }
+}
+
+/// Shape helper for tests and bindings: a 1-D view as a dynamic-rank view.
+pub fn dyn1<'a, T>(a: ArrayView1<'a, T>) -> ArrayViewD<'a, T> {
+    a.into_dimensionality::<IxDyn>()
+        .expect("a 1-D view always converts to IxDyn")
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use ndarray::{Array1, Array2, ArrayD, ShapeBuilder};
+
+    fn lcg(seed: &mut u64) -> f64 {
+        *seed = seed
+            .wrapping_mul(6364136223846793005)
+            .wrapping_add(1442695040888963407);
+        ((*seed >> 11) as f64) / ((1u64 << 53) as f64)
+    }
+
+    /// Schulman et al. 2017, eq. 7, transcribed directly (negated, averaged).
+    fn reference(nl: &[f64], ol: &[f64], a: &[f64], m: &[bool], clip: f64) -> (f64, f64) {
+        let mut s = 0.0;
+        let mut kl = 0.0;
+        let mut n = 0.0;
+        for i in 0..nl.len() {
+            if !m[i] {
+                continue;
+            }
+            let r = (nl[i] - ol[i]).exp();
+            let obj = (r * a[i]).min(r.clamp(1.0 - clip, 1.0 + clip) * a[i]);
+            s += obj;
+            kl += r - 1.0 - r.ln();
+            n += 1.0;
+        }
+        (-s / n, kl / n)
+    }
+
+    fn run(
+        nl: &Array2<f64>,
+        ol: &Array2<f64>,
+        a: &Array2<f64>,
+        m: Option<&Array2<bool>>,
+        clip: f64,
+        par: Par,
+    ) -> (Surrogate, Array2<f64>) {
+        let mut g = Array2::zeros(nl.dim().f());
+        let s = clipped_surrogate(
+            nl.view().into_dyn(),
+            ol.view().into_dyn(),
+            a.view().into_dyn(),
+            m.map(|m| m.view().into_dyn()),
+            clip,
+            true,
+            g.view_mut().into_dyn(),
+            par,
+        )
+        .unwrap();
+        (s, g)
+    }
+
+    #[test]
+    fn matches_eq7_and_finite_differences() {
+        let mut seed = 1u64;
+        let (rows, cols) = (300, 70);
+        let nl = Array2::from_shape_fn((rows, cols), |_| -1.0 + 0.6 * (lcg(&mut seed) - 0.5));
+        let ol = Array2::from_shape_fn((rows, cols), |_| -1.0 + 0.6 * (lcg(&mut seed) - 0.5));
+        let a = Array2::from_shape_fn((rows, cols), |_| lcg(&mut seed) * 2.0 - 1.0);
+        let m = Array2::from_shape_fn((rows, cols), |_| lcg(&mut seed) < 0.8);
+        let clip = 0.2;
+        let (s, g) = run(&nl, &ol, &a, Some(&m), clip, Par::Rayon);
+        let flat = |x: &Array2<f64>| x.iter().copied().collect::<Vec<_>>();
+        let mf: Vec<bool> = m.iter().copied().collect();
+        let (loss, kl) = reference(&flat(&nl), &flat(&ol), &flat(&a), &mf, clip);
+        assert!((s.loss - loss).abs() < 1e-13);
+        assert!((s.approx_kl - kl).abs() < 1e-13);
+        assert!(s.approx_kl >= 0.0);
+        assert_eq!(s.count, mf.iter().filter(|&&k| k).count());
+        // Central differences (common practice, no source), away from kinks.
+        let h = 1e-6;
+        let mut checked = 0;
+        for (k, ((i, j), &gij)) in g.indexed_iter().enumerate() {
+            if k % 37 != 0 {
+                continue;
+            }
+            let r = (nl[[i, j]] - ol[[i, j]]).exp();
+            if ((r - 1.0).abs() - clip).abs() < 1e-4 {
+                continue;
+            }
+            let mut p = flat(&nl);
+            let idx = i * cols + j;
+            p[idx] += h;
+            let (lp, _) = reference(&p, &flat(&ol), &flat(&a), &mf, clip);
+            p[idx] -= 2.0 * h;
+            let (lm, _) = reference(&p, &flat(&ol), &flat(&a), &mf, clip);
+            let fd = (lp - lm) / (2.0 * h);
+            assert!((fd - gij).abs() < 1e-9, "{fd} vs {gij}");
+            checked += 1;
+        }
+        assert!(checked > 300);
+        // Masked-out elements have zero gradient; a thread count changes nothing.
+        assert!(g.iter().zip(m.iter()).all(|(&g, &k)| k || g == 0.0));
+        let (s1, g1) = run(&nl, &ol, &a, Some(&m), clip, Par::Seq);
+        assert_eq!(s, s1);
+        assert_eq!(g, g1);
+        // The AVX2 path (when the CPU has it) and the baseline path agree bitwise.
+        fastmath::set_wide_off(true);
+        let (s2, g2) = run(&nl, &ol, &a, Some(&m), clip, Par::Seq);
+        fastmath::set_wide_off(false);
+        assert_eq!(s, s2);
+        assert_eq!(g, g2);
+    }
+
+    #[test]
+    fn diagnostics_and_errors() {
+        let nl = Array1::from(vec![0.0f64, 0.5, -0.5, 0.1]);
+        let ol = Array1::zeros(4);
+        let a = Array1::from(vec![1.0, 1.0, -1.0, 2.0]);
+        let mut g = ArrayD::zeros(IxDyn(&[4]));
+        let s = clipped_surrogate(
+            dyn1(nl.view()),
+            dyn1(ol.view()),
+            dyn1(a.view()),
+            None,
+            0.2,
+            true,
+            g.view_mut(),
+            Par::Seq,
+        )
+        .unwrap();
+        assert_eq!(s.clip_fraction, 0.5);
+        assert!((s.ratio_max - 0.5f64.exp()).abs() < 4.0 * f64::EPSILON);
+        // Both clipped elements are clipped in the direction that zeroes the gradient.
+        assert_eq!(g[1], 0.0);
+        assert_eq!(g[2], 0.0);
+        assert_eq!(g[0], -0.25);
+        let none = Array1::from(vec![false; 4]);
+        let e = clipped_surrogate(
+            dyn1(nl.view()),
+            dyn1(ol.view()),
+            dyn1(a.view()),
+            Some(dyn1(none.view())),
+            0.2,
+            true,
+            g.view_mut(),
+            Par::Seq,
+        )
+        .unwrap_err();
+        assert!(matches!(e, CoreError::Input { arg: "mask", .. }));
+        let mut bad = nl.clone();
+        bad[3] = f64::INFINITY;
+        let e = clipped_surrogate(
+            dyn1(bad.view()),
+            dyn1(ol.view()),
+            dyn1(a.view()),
+            None,
+            0.2,
+            true,
+            g.view_mut(),
+            Par::Seq,
+        )
+        .unwrap_err();
+        assert_eq!(e, CoreError::non_finite("new_log_prob", At::Flat(3)));
+        let short = Array1::<f64>::zeros(3);
+        let e = clipped_surrogate(
+            dyn1(nl.view()),
+            dyn1(short.view()),
+            dyn1(a.view()),
+            None,
+            0.2,
+            true,
+            g.view_mut(),
+            Par::Seq,
+        )
+        .unwrap_err();
+        assert!(matches!(e, CoreError::Shape(_)));
+        let e = clipped_surrogate(
+            dyn1(nl.view()),
+            dyn1(ol.view()),
+            dyn1(a.view()),
+            None,
+            f64::NAN,
+            true,
+            g.view_mut(),
+            Par::Seq,
+        )
+        .unwrap_err();
+        assert!(matches!(e, CoreError::Input { arg: "clip", .. }));
+    }
+}

@@ -1,0 +1,537 @@
+//! V-trace targets and policy-gradient advantages (Espeholt et al. 2018,
+//! section 4.1) over time-major buffers viewed as `[T, M]`.
+//!
+//! With `ratio_t = exp(target_log_prob_t - behaviour_log_prob_t)` ([`fastmath::exp`]),
+//!
+//! ```text
+//! rho_t   = min(rho_bar, ratio_t)
+//! c_t     = lam * min(c_bar, ratio_t)
+//! delta_t = rho_t * (r_t + gamma * V'_t - V(s_t))
+//! vs_t    = V(s_t) + delta_t + gamma * c_t * (1 - end_t) * (vs_{t+1} - V(s_{t+1}))
+//! pg_t    = rho_t * (r_t + gamma * vnext_t - V(s_t))
+//! vnext_t = vs_{t+1}   inside an episode (values[t+1] + (vs_{t+1} - V(s_{t+1})))
+//!         = V'_t       at an episode end or the last row
+//! ```
+//!
+//! `V'_t` and `end_t` follow the bootstrap rule of [`super::timemajor`]; the
+//! tile loop, validation and tiling are the ones GAE uses. On-policy
+//! (`ratio = 1`) with `rho_bar = c_bar = 1` the targets are the
+//! lambda-returns of GAE with the same `lam`.
+
+use super::error::{check_unit, CoreError, CoreResult};
+use super::fastmath;
+use super::float::Real;
+use super::par::Par;
+use super::timemajor::{self, Row, StepRule, Steps, Store};
+use ndarray::{ArrayView2, ArrayViewMut2};
+
+/// The coefficients of [`vtrace`].
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct VtraceParams {
+    /// Discount, in `[0, 1]`.
+    pub gamma: f64,
+    /// Trace coefficient multiplying `c_t`, in `[0, 1]`.
+    pub lam: f64,
+    /// Truncation level of `rho_t` (>= 0, `inf` for none).
+    pub rho_bar: f64,
+    /// Truncation level of `c_t` (>= 0, `inf` for none).
+    pub c_bar: f64,
+}
+
+struct VtraceRule {
+    p: VtraceParams,
+}
+
+/// `min(bar, x)` that lets a NaN `x` through (so `check_finite=False`
+/// propagates NaN instead of hiding it behind the bar).
+#[inline(always)]
+fn cap(x: f64, bar: f64) -> f64 {
+    if x > bar {
+        bar
+    } else {
+        x
+    }
+}
+
+impl StepRule for VtraceRule {
+    const VALUES: bool = true;
+    // Index loops over small fixed groups are what the vectoriser wants here.
+    #[allow(clippy::needless_range_loop)]
+    #[inline(always)]
+    fn row(&self, row: &Row<'_>, y: &mut [f64], carry: &mut [f64], aux: &mut [f64]) {
+        let VtraceParams {
+            gamma,
+            lam,
+            rho_bar,
+            c_bar,
+        } = self.p;
+        let n = y.len();
+        // Equal lengths up front let the loop run without bounds checks.
+        let (blp, tlp) = (&row.extra[0][..n], &row.extra[1][..n]);
+        let vn = &row.next_values.unwrap_or(row.values_below)[..n];
+        let (te, tr) = (&row.te[..n], &row.tr[..n]);
+        let (values, below_v) = (&row.values[..n], &row.values_below[..n]);
+        let (carry, aux) = (&mut carry[..n], &mut aux[..n]);
+        let last = row.last;
+        // Groups of 8: the exponentials first, in a plain loop that
+        // vectorises, then the rest of the step.
+        const G: usize = 8;
+        let mut j0 = 0;
+        while j0 < n {
+            let len = G.min(n - j0);
+            let mut lr = [0.0f64; G];
+            for l in 0..len {
+                lr[l] = tlp[j0 + l] - blp[j0 + l];
+            }
+            let mut ratio = [0.0f64; G];
+            for l in 0..G {
+                ratio[l] = fastmath::exp(lr[l]);
+            }
+            for l in 0..len {
+                let j = j0 + l;
+                let rho = cap(ratio[l], rho_bar);
+                let cs = lam * cap(ratio[l], c_bar);
+                let end = te[j] | tr[j];
+                let vp = if te[j] { 0.0 } else { vn[j] };
+                let (r, v, below) = (y[j], values[j], carry[j]);
+                // vs_{t+1} inside an episode, V'_t at an end or the last row.
+                let vnext = if end | last { vp } else { below_v[j] + below };
+                aux[j] = rho * (r + gamma * vnext - v);
+                let d = rho * (r + gamma * vp - v);
+                let a = if end { d } else { d + gamma * cs * below };
+                y[j] = a;
+                carry[j] = a;
+            }
+            j0 += G;
+        }
+    }
+}
+
+/// V-trace targets `vs` and policy-gradient advantages `pg` (module docs),
+/// written to `vs_out` and `pg_out` (`[T, M]`, any strides).
+///
+/// `behaviour_log_prob` / `target_log_prob` are `log mu(a_t | s_t)` and
+/// `log pi(a_t | s_t)` with the shape of `rewards`; `steps.values` is required.
+#[allow(clippy::too_many_arguments)]
+pub fn vtrace<F: Real>(
+    steps: &Steps<'_, F>,
+    behaviour_log_prob: ArrayView2<'_, F>,
+    target_log_prob: ArrayView2<'_, F>,
+    p: VtraceParams,
+    check_finite: bool,
+    vs_out: ArrayViewMut2<'_, F>,
+    pg_out: ArrayViewMut2<'_, F>,
+    par: Par,
+) -> CoreResult<()> {
+    check_unit("gamma", p.gamma)?;
+    check_unit("lam", p.lam)?;
+    for (name, bar) in [("rho_bar", p.rho_bar), ("c_bar", p.c_bar)] {
+        if bar.is_nan() || bar < 0.0 {
+            return Err(CoreError::input(
+                name,
+                format!("must be >= 0 (inf for no truncation), got {bar}"),
+            ));
+        }
+    }
+    let shape = steps.rewards.shape();
+    for (name, a) in [
+        ("behaviour_log_prob", &behaviour_log_prob),
+        ("target_log_prob", &target_log_prob),
+    ] {
+        if a.shape() != shape {
+            return Err(CoreError::shape_mismatch(
+                name,
+                a.shape(),
+                "rewards",
+                shape,
+                "per-step arrays must have the shape of rewards",
+            ));
+        }
+    }
+    steps.validate(true, check_finite, par)?;
+    if check_finite {
+        timemajor::check_finite_2d("behaviour_log_prob", &behaviour_log_prob, par)?;
+        timemajor::check_finite_2d("target_log_prob", &target_log_prob, par)?;
+    }
+    timemajor::check_out("out[0]", vs_out.shape(), shape)?;
+    timemajor::check_out("out[1]", pg_out.shape(), shape)?;
+    timemajor::run(
+        steps,
+        &[behaviour_log_prob, target_log_prob],
+        &VtraceRule { p },
+        (Store::YPlusV, Some(Store::Aux)),
+        vs_out,
+        Some(pg_out),
+        par,
+    );
+    Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::core::timemajor::gae;
+    use crate::core::{At, CoreError};
+    use ndarray::{Array1, Array2, ShapeBuilder};
+
+    fn lcg(seed: &mut u64) -> f64 {
+        *seed = seed
+            .wrapping_mul(6364136223846793005)
+            .wrapping_add(1442695040888963407);
+        ((*seed >> 11) as f64) / ((1u64 << 53) as f64)
+    }
+
+    struct Data {
+        r: Array2<f64>,
+        v: Array2<f64>,
+        nv: Array2<f64>,
+        term: Array2<bool>,
+        trunc: Array2<bool>,
+        blp: Array2<f64>,
+        tlp: Array2<f64>,
+        boot: Array1<f64>,
+    }
+
+    fn data(t: usize, m: usize, seed: &mut u64) -> Data {
+        let mut f = |a: f64, b: f64| Array2::from_shape_fn((t, m), |_| a + (b - a) * lcg(seed));
+        let r = f(-1.0, 1.0);
+        let v = f(0.0, 1.0);
+        let nv = f(0.0, 1.0);
+        let blp = f(-2.0, 0.0);
+        let tlp = f(-2.0, 0.0);
+        let term = Array2::from_shape_fn((t, m), |_| lcg(seed) < 0.05);
+        let trunc = Array2::from_shape_fn((t, m), |_| lcg(seed) < 0.05);
+        let boot = Array1::from_shape_fn(m, |_| lcg(seed));
+        Data {
+            r,
+            v,
+            nv,
+            term,
+            trunc,
+            blp,
+            tlp,
+            boot,
+        }
+    }
+
+    /// A plain loop written from Espeholt et al. 2018, section 4.1, recursive
+    /// form v_s = V(x_s) + delta_s + gamma c_s (v_{s+1} - V(x_{s+1})), with the
+    /// crate's episode-end rule: one stream, one step at a time.
+    fn reference(
+        d: &Data,
+        use_nv: bool,
+        use_trunc: bool,
+        p: VtraceParams,
+    ) -> (Array2<f64>, Array2<f64>) {
+        let (t_len, m_len) = d.r.dim();
+        let mut vs = Array2::zeros((t_len, m_len));
+        let mut pg = Array2::zeros((t_len, m_len));
+        for m in 0..m_len {
+            // (v_{s+1} - V(x_{s+1})) and V(x_{s+1}) from the values array.
+            let mut corr_next = 0.0;
+            let mut v_next_arr = d.boot[m];
+            for t in (0..t_len).rev() {
+                let te = d.term[[t, m]];
+                let tr = use_trunc && d.trunc[[t, m]];
+                let vp = if te {
+                    0.0
+                } else if use_nv {
+                    d.nv[[t, m]]
+                } else {
+                    v_next_arr
+                };
+                let ratio = (d.tlp[[t, m]] - d.blp[[t, m]]).exp();
+                let rho = ratio.min(p.rho_bar);
+                let c = p.lam * ratio.min(p.c_bar);
+                let v = d.v[[t, m]];
+                let delta = rho * (d.r[[t, m]] + p.gamma * vp - v);
+                let end = te || tr;
+                let corr = delta + if end { 0.0 } else { p.gamma * c * corr_next };
+                vs[[t, m]] = v + corr;
+                let vnext = if end || t + 1 == t_len {
+                    vp
+                } else {
+                    v_next_arr + corr_next
+                };
+                pg[[t, m]] = rho * (d.r[[t, m]] + p.gamma * vnext - v);
+                corr_next = corr;
+                v_next_arr = v;
+            }
+        }
+        (vs, pg)
+    }
+
+    fn close(a: &Array2<f64>, b: &Array2<f64>, tol: f64) -> bool {
+        a.iter()
+            .zip(b.iter())
+            .all(|(x, y)| (x - y).abs() <= tol * (1.0 + y.abs()))
+    }
+
+    #[test]
+    fn matches_recursive_form_in_all_layouts() {
+        let mut seed = 11u64;
+        let p = VtraceParams {
+            gamma: 0.97,
+            lam: 0.9,
+            rho_bar: 1.0,
+            c_bar: 0.8,
+        };
+        for &(t, m) in &[
+            (1usize, 1usize),
+            (6, 3),
+            (41, 9),
+            (300, 300),
+            (1500, 2),
+            (3, 700),
+        ] {
+            let d = data(t, m, &mut seed);
+            for par in [Par::Seq, Par::Rayon] {
+                // With next_values and truncations.
+                let steps = Steps {
+                    values: Some(d.v.view()),
+                    next_values: Some(d.nv.view()),
+                    terminated: Some(d.term.view()),
+                    truncated: Some(d.trunc.view()),
+                    ..Steps::new(d.r.view())
+                };
+                let mut vs = Array2::zeros((t, m));
+                let mut pg = Array2::zeros((t, m).f());
+                vtrace(
+                    &steps,
+                    d.blp.view(),
+                    d.tlp.view(),
+                    p,
+                    true,
+                    vs.view_mut(),
+                    pg.view_mut(),
+                    par,
+                )
+                .unwrap();
+                let (rv, rp) = reference(&d, true, true, p);
+                assert!(close(&vs, &rv, 1e-12));
+                assert!(close(&pg, &rp, 1e-12));
+                // Bootstrap, values[t+1] inside episodes, Fortran-order rewards.
+                let mut rf = Array2::zeros((t, m).f());
+                rf.assign(&d.r);
+                let steps = Steps {
+                    values: Some(d.v.view()),
+                    terminated: Some(d.term.view()),
+                    bootstrap: Some(d.boot.view()),
+                    ..Steps::new(rf.view())
+                };
+                vtrace(
+                    &steps,
+                    d.blp.view(),
+                    d.tlp.view(),
+                    p,
+                    true,
+                    vs.view_mut(),
+                    pg.view_mut(),
+                    par,
+                )
+                .unwrap();
+                let (rv, rp) = reference(&d, false, false, p);
+                assert!(close(&vs, &rv, 1e-12));
+                assert!(close(&pg, &rp, 1e-12));
+            }
+        }
+    }
+
+    #[test]
+    fn on_policy_targets_are_lambda_returns() {
+        // Espeholt et al. 2018, remark after eq. 1: on-policy with c = lam the
+        // targets are the lambda-returns.
+        let mut seed = 3u64;
+        let d = data(200, 17, &mut seed);
+        let steps = Steps {
+            values: Some(d.v.view()),
+            terminated: Some(d.term.view()),
+            bootstrap: Some(d.boot.view()),
+            ..Steps::new(d.r.view())
+        };
+        let p = VtraceParams {
+            gamma: 0.99,
+            lam: 0.95,
+            rho_bar: 1.0,
+            c_bar: 1.0,
+        };
+        let mut vs = Array2::zeros((200, 17));
+        let mut pg = Array2::zeros((200, 17));
+        vtrace(
+            &steps,
+            d.blp.view(),
+            d.blp.view(),
+            p,
+            true,
+            vs.view_mut(),
+            pg.view_mut(),
+            Par::Seq,
+        )
+        .unwrap();
+        let mut adv = Array2::zeros((200, 17));
+        let mut ret = Array2::zeros((200, 17));
+        gae(
+            &steps,
+            0.99,
+            0.95,
+            None,
+            true,
+            adv.view_mut(),
+            ret.view_mut(),
+            Par::Seq,
+        )
+        .unwrap();
+        assert!(close(&vs, &ret, 1e-13));
+    }
+
+    #[test]
+    fn thread_count_does_not_change_bits() {
+        let mut seed = 5u64;
+        let d = data(700, 300, &mut seed);
+        let r32 = d.r.mapv(|x| x as f32);
+        let v32 = d.v.mapv(|x| x as f32);
+        let b32 = d.blp.mapv(|x| x as f32);
+        let t32 = d.tlp.mapv(|x| x as f32);
+        let steps = Steps {
+            values: Some(v32.view()),
+            terminated: Some(d.term.view()),
+            ..Steps::new(r32.view())
+        };
+        let p = VtraceParams {
+            gamma: 0.99,
+            lam: 1.0,
+            rho_bar: 1.0,
+            c_bar: 1.0,
+        };
+        let mut out = [(); 4].map(|_| Array2::<f32>::zeros((700, 300)));
+        let [a, b, c, e] = &mut out;
+        vtrace(
+            &steps,
+            b32.view(),
+            t32.view(),
+            p,
+            true,
+            a.view_mut(),
+            b.view_mut(),
+            Par::Seq,
+        )
+        .unwrap();
+        vtrace(
+            &steps,
+            b32.view(),
+            t32.view(),
+            p,
+            true,
+            c.view_mut(),
+            e.view_mut(),
+            Par::Rayon,
+        )
+        .unwrap();
+        assert_eq!(a, c);
+        assert_eq!(b, e);
+        // The AVX2 path (when the CPU has it) and the baseline path agree bitwise.
+        crate::core::fastmath::set_wide_off(true);
+        vtrace(
+            &steps,
+            b32.view(),
+            t32.view(),
+            p,
+            true,
+            c.view_mut(),
+            e.view_mut(),
+            Par::Seq,
+        )
+        .unwrap();
+        crate::core::fastmath::set_wide_off(false);
+        assert_eq!(a, c);
+        assert_eq!(b, e);
+    }
+
+    #[test]
+    fn errors_name_argument_and_index() {
+        let mut seed = 9u64;
+        let mut d = data(5, 3, &mut seed);
+        let p = VtraceParams {
+            gamma: 0.9,
+            lam: 1.0,
+            rho_bar: 1.0,
+            c_bar: 1.0,
+        };
+        let mut vs = Array2::zeros((5, 3));
+        let mut pg = Array2::zeros((5, 3));
+        d.tlp[[2, 1]] = f64::NAN;
+        let steps = Steps {
+            values: Some(d.v.view()),
+            ..Steps::new(d.r.view())
+        };
+        let e = vtrace(
+            &steps,
+            d.blp.view(),
+            d.tlp.view(),
+            p,
+            true,
+            vs.view_mut(),
+            pg.view_mut(),
+            Par::Seq,
+        )
+        .unwrap_err();
+        assert_eq!(
+            e,
+            CoreError::non_finite("target_log_prob", At::TimeStream(2, 1))
+        );
+        // check_finite=False lets the NaN through to both outputs.
+        vtrace(
+            &steps,
+            d.blp.view(),
+            d.tlp.view(),
+            p,
+            false,
+            vs.view_mut(),
+            pg.view_mut(),
+            Par::Seq,
+        )
+        .unwrap();
+        assert!(vs[[2, 1]].is_nan() && pg[[2, 1]].is_nan());
+        let short = Array2::<f64>::zeros((4, 3));
+        let e = vtrace(
+            &steps,
+            short.view(),
+            d.tlp.view(),
+            p,
+            true,
+            vs.view_mut(),
+            pg.view_mut(),
+            Par::Seq,
+        )
+        .unwrap_err();
+        assert!(
+            matches!(e, CoreError::Shape(ref s) if s.starts_with("behaviour_log_prob has shape (4, 3)"))
+        );
+        let bad = VtraceParams { rho_bar: -1.0, ..p };
+        let e = vtrace(
+            &steps,
+            d.blp.view(),
+            d.blp.view(),
+            bad,
+            true,
+            vs.view_mut(),
+            pg.view_mut(),
+            Par::Seq,
+        )
+        .unwrap_err();
+        assert!(matches!(e, CoreError::Input { arg: "rho_bar", .. }));
+        let no_values = Steps::new(d.r.view());
+        let e = vtrace(
+            &no_values,
+            d.blp.view(),
+            d.blp.view(),
+            p,
+            true,
+            vs.view_mut(),
+            pg.view_mut(),
+            Par::Seq,
+        )
+        .unwrap_err();
+        assert!(matches!(e, CoreError::Input { arg: "values", .. }));
+    }
+}
