@@ -175,6 +175,15 @@ fn seed_arg(obj: &Any<'_>) -> PyResult<u64> {
 /// The values of a small float argument (a shared log_std, a bound) as
 /// float64, with its shape.
 fn small_values(py: Python<'_>, name: &str, obj: &Any<'_>) -> PyResult<(Vec<usize>, Vec<f64>)> {
+    // float32 / float64 arrays are read as they are (no NumPy call).
+    if let Ok(a) = obj.cast::<PyArrayDyn<f32>>() {
+        let v = Ro::new(a)?.view().iter().map(|&x| x as f64).collect();
+        return Ok((a.shape().to_vec(), v));
+    }
+    if let Ok(a) = obj.cast::<PyArrayDyn<f64>>() {
+        let v = Ro::new(a)?.view().iter().copied().collect();
+        return Ok((a.shape().to_vec(), v));
+    }
     let a = cast_float::<f64>(py, name, obj)?;
     let shape = a.shape().to_vec();
     if a.len() == 0 {

@@ -23,11 +23,12 @@ use super::math::{exp_inplace, exp_to, half_tanh_p1, log1m_tanh2, simd, HALF_LN_
 use super::rng::Stream;
 use super::squashed::Bounds;
 use super::{
-    any_nan, batch_shape, first_error, gather_col, gather_t, row_starts, scatter_col, scatter_t,
-    split_last, to2, to2_mut, Buf,
+    any_nan, batch_shape, first_error, gather_col, gather_rows, row_starts, scatter_col,
+    scatter_rows, split_last, to2, to2_mut, Buf,
 };
 use super::{At, Layout};
 use crate::core::error::{CoreError, CoreResult};
+use crate::core::finite::all_finite;
 use crate::core::float::Real;
 use crate::core::par::Par;
 use ndarray::{ArrayView2, ArrayViewD, ArrayViewMutD, Ix1};
@@ -291,6 +292,11 @@ pub(crate) fn run<F: Real>(
             pre: pr.flatten(),
         });
     }
+    // A shared log_std (and exp(-log_std)) tiled once over the longest block.
+    let shared = shared.map(|(v, inv)| {
+        let rows = items.iter().map(|b| b.mean.nrows()).max().unwrap_or(0);
+        (v.repeat(rows), inv.repeat(rows))
+    });
     let ctx = Ctx {
         shared,
         bounds,
@@ -309,6 +315,8 @@ pub(crate) fn run<F: Real>(
 }
 
 impl Ctx<'_> {
+    /// One block, row-major: elementwise terms over the flat block vectorise
+    /// for any `D`, and every row sum adds its `D` terms in axis order.
     #[inline(always)]
     fn block<F: Real>(&self, b: GBlock<'_, F>) -> CoreResult<()> {
         let (n, d) = b.mean.dim();
@@ -316,118 +324,85 @@ impl Ctx<'_> {
         let check = self.check;
         let squash = self.bounds;
         let invert = squash.is_some() && !self.pre_given && b.a.is_some();
-        let col = |j: usize| j * n..(j + 1) * n;
         let conv = |v: F| v.to_f64();
 
-        // Column-major scratch of the block: mean, log_std, exp(-log_std), actions (or u).
         let mut mu = Buf::stale(nd);
-        gather_t(&b.mean, &mut mu, conv);
-        let mut ls = Buf::stale(nd);
-        let mut inv = Buf::stale(nd);
-        match (&b.ls, &self.shared) {
-            (Some(v), _) => {
-                gather_t(v, &mut ls, conv);
-                inv.iter_mut().zip(ls.iter()).for_each(|(i, &s)| *i = -s);
-                exp_inplace(&mut inv);
-            }
-            (None, Some((sv, si))) => {
-                for j in 0..d {
-                    ls[col(j)].fill(sv[j]);
-                    inv[col(j)].fill(si[j]);
-                }
-            }
-            (None, None) => unreachable!("log_std is shared or per row"),
+        gather_rows(&b.mean, &mut mu, conv);
+        // log_std and exp(-log_std), per element (a shared one tiled per row).
+        let mut ls_buf = Buf::stale(if b.ls.is_some() { nd } else { 0 });
+        let mut inv_buf = Buf::stale(if b.ls.is_some() { nd } else { 0 });
+        if let Some(v) = &b.ls {
+            gather_rows(v, &mut ls_buf, conv);
+            inv_buf
+                .iter_mut()
+                .zip(ls_buf.iter())
+                .for_each(|(i, &s)| *i = -s);
+            exp_inplace(&mut inv_buf);
         }
+        let (ls, inv): (&[f64], &[f64]) = match &self.shared {
+            Some((tls, tinv)) if b.ls.is_none() => (&tls[..nd], &tinv[..nd]),
+            _ => (&ls_buf, &inv_buf),
+        };
         let mut a = Buf::stale(if b.a.is_some() { nd } else { 0 });
         if let Some(av) = &b.a {
-            gather_t(av, &mut a, conv);
+            gather_rows(av, &mut a, conv);
         }
-        let mut chk = Buf::filled(n, 0.0);
-        if check {
-            for j in 0..d {
-                let c = col(j);
-                chk.iter_mut()
-                    .zip(&mu[c.clone()])
-                    .for_each(|(k, &m)| *k += m * 0.0);
-                if b.ls.is_some() {
-                    chk.iter_mut()
-                        .zip(&ls[c.clone()])
-                        .for_each(|(k, &s)| *k += s * 0.0);
-                }
-                if b.a.is_some() {
-                    chk.iter_mut().zip(&a[c]).for_each(|(k, &x)| *k += x * 0.0);
-                }
-            }
-        }
-        let mut oor = vec![false; if invert { n } else { 0 }];
+        // One NaN-or-not flag for the block; rows are searched only on failure.
+        let mut bad =
+            check && !(all_finite(&mu) && (b.ls.is_none() || all_finite(ls)) && all_finite(&a));
         if invert {
             let bd = squash.expect("bounds");
-            for j in 0..d {
-                let (lo, hi) = (bd.low[j], bd.high[j]);
-                oor.iter_mut().zip(a[col(j)].iter_mut()).for_each(|(o, x)| {
-                    *o |= *x < lo || *x > hi;
+            for row in a.chunks_exact_mut(d.max(1)).take(n) {
+                for ((x, &lo), &hi) in row.iter_mut().zip(&bd.low).zip(&bd.high) {
+                    bad |= *x < lo || *x > hi;
                     // u = atanh(2 (a - lo) / (hi - lo) - 1), without the
                     // cancellation near either bound.
                     *x = 0.5 * ((*x - lo).ln() - (hi - *x).ln());
-                });
+                }
             }
         }
-        if (check && any_nan(&chk)) || oor.contains(&true) {
+        if bad {
             for r in 0..n {
-                if chk[r].is_nan() || oor.get(r).copied().unwrap_or(false) {
-                    return Err(self.row_error(
-                        &b.mean,
-                        b.ls.as_ref(),
-                        b.a.as_ref(),
-                        r,
-                        b.row0 + r,
-                    ));
+                if let Some(e) = self.row_error(&b.mean, b.ls.as_ref(), b.a.as_ref(), r, b.row0 + r)
+                {
+                    return Err(e);
                 }
             }
         }
 
         if let Some(o) = b.log_prob {
-            let mut lp = Buf::filled(n, 0.0);
-            for j in 0..d {
-                let c = col(j);
-                let terms = lp
-                    .iter_mut()
-                    .zip(a[c.clone()].iter().zip(&mu[c.clone()]))
-                    .zip(ls[c.clone()].iter().zip(&inv[c]));
-                match squash {
-                    None => terms.for_each(|((l, (&x, &m)), (&s, &iv))| {
-                        let z = (x - m) * iv;
-                        *l += -0.5 * z * z - s;
-                    }),
-                    Some(bd) => {
-                        let lw = (0.5 * (bd.high[j] - bd.low[j])).ln();
-                        terms.for_each(|((l, (&u, &m)), (&s, &iv))| {
-                            let z = (u - m) * iv;
-                            *l += if u.is_infinite() {
-                                f64::NEG_INFINITY
-                            } else {
-                                -0.5 * z * z - s - lw - log1m_tanh2(u)
-                            };
-                        });
+            // t = -z^2 / 2 - log_std (- the squash's log-Jacobian), elementwise.
+            let mut t = Buf::stale(nd);
+            t.iter_mut()
+                .zip(a.iter().zip(mu.iter()))
+                .zip(ls.iter().zip(inv.iter()))
+                .for_each(|((t, (&x, &m)), (&s, &iv))| {
+                    let z = (x - m) * iv;
+                    *t = -0.5 * z * z - s;
+                });
+            if let Some(bd) = squash {
+                let lw: Vec<f64> = (0..d)
+                    .map(|j| (0.5 * (bd.high[j] - bd.low[j])).ln())
+                    .collect();
+                for (tr, ur) in t.chunks_exact_mut(d.max(1)).zip(a.chunks_exact(d.max(1))) {
+                    for ((t, &u), &lw) in tr.iter_mut().zip(ur).zip(&lw) {
+                        *t = if u.is_infinite() {
+                            f64::NEG_INFINITY
+                        } else {
+                            *t - lw - log1m_tanh2(u)
+                        };
                     }
                 }
             }
             let c = -(d as f64) * HALF_LN_2PI;
-            lp.iter_mut().for_each(|l| *l += c);
+            let lp = row_sums(&t, n, d, c);
             write_rows(&lp, o);
         }
         if let Some(o) = b.entropy {
-            let mut ent = Buf::filled(n, 0.0);
-            match self.entropy_const {
-                Some(c) => ent.fill(c),
-                None => {
-                    for j in 0..d {
-                        ent.iter_mut().zip(&ls[col(j)]).for_each(|(e, &s)| *e += s);
-                    }
-                    let c = d as f64 * (0.5 + HALF_LN_2PI);
-                    ent.iter_mut().for_each(|e| *e += c);
-                }
-            }
+            let ent = match self.entropy_const {
+                Some(c) => Buf::filled(n, c),
+                None => row_sums(ls, n, d, d as f64 * (0.5 + HALF_LN_2PI)),
+            };
             write_rows(&ent, o);
         }
         if b.d_mean.is_some() || b.d_log_std.is_some() {
@@ -442,52 +417,50 @@ impl Ctx<'_> {
                     *h = z * z - 1.0;
                 });
             if let Some(o) = b.d_mean {
-                scatter_t(&g, to2_mut(o));
+                scatter_rows(&g, to2_mut(o));
             }
             if let Some(o) = b.d_log_std {
-                scatter_t(&h, to2_mut(o));
+                scatter_rows(&h, to2_mut(o));
             }
         }
         if let (Some(o), Some(seed)) = (b.sample, self.seed) {
-            // u = mean + exp(log_std) * N(0, 1), normals in pairs per row.
+            // u = mean + exp(log_std) * N(0, 1), normals in pairs along each row.
             let mut u = Buf::stale(nd);
-            for r in 0..n {
+            for (r, row) in u.chunks_exact_mut(d.max(1)).take(n).enumerate() {
                 let st = Stream::new(seed, (b.row0 + r) as u64);
-                for p in 0..d.div_ceil(2) {
+                for (p, pair) in row.chunks_mut(2).enumerate() {
                     let (z0, z1) = st.normal_pair(p as u64);
-                    u[2 * p * n + r] = z0;
-                    if 2 * p + 1 < d {
-                        u[(2 * p + 1) * n + r] = z1;
+                    pair[0] = z0;
+                    if let Some(x) = pair.get_mut(1) {
+                        *x = z1;
                     }
                 }
             }
             let mut sd = Buf::stale(nd);
-            exp_to(&ls, &mut sd);
+            exp_to(ls, &mut sd);
             u.iter_mut()
                 .zip(mu.iter().zip(sd.iter()))
                 .for_each(|(u, (&m, &s))| *u = m + s * *u);
             match squash {
-                None => scatter_t(&u, to2_mut(o)),
+                None => scatter_rows(&u, to2_mut(o)),
                 Some(bd) => {
                     if let Some(p) = b.pre {
-                        scatter_t(&u, to2_mut(p));
+                        scatter_rows(&u, to2_mut(p));
                     }
-                    for j in 0..d {
-                        let (lo, hi) = (bd.low[j], bd.high[j]);
-                        let w = hi - lo;
-                        u[col(j)].iter_mut().for_each(|u| {
-                            let x = lo + w * half_tanh_p1(*u);
+                    for row in u.chunks_exact_mut(d.max(1)).take(n) {
+                        for ((u, &lo), &hi) in row.iter_mut().zip(&bd.low).zip(&bd.high) {
+                            let x = lo + (hi - lo) * half_tanh_p1(*u);
                             *u = if x > hi { hi } else { x };
-                        });
+                        }
                     }
-                    scatter_t(&u, to2_mut(o));
+                    scatter_rows(&u, to2_mut(o));
                 }
             }
         }
         Ok(())
     }
 
-    /// The first bad element of row `r` (the row is known to hold one).
+    /// The first bad element of row `r`, if any.
     fn row_error<F: Real>(
         &self,
         mean: &ArrayView2<'_, F>,
@@ -495,7 +468,7 @@ impl Ctx<'_> {
         a: Option<&ArrayView2<'_, F>>,
         r: usize,
         row: usize,
-    ) -> CoreError {
+    ) -> Option<CoreError> {
         let a_name = if self.pre_given {
             "pre_squash"
         } else {
@@ -504,33 +477,47 @@ impl Ctx<'_> {
         for j in 0..mean.ncols() {
             let at = At::RowCol(row, j);
             if self.check && !mean[[r, j]].finite() {
-                return CoreError::non_finite("mean", at);
+                return Some(CoreError::non_finite("mean", at));
             }
             if self.check && ls.is_some_and(|v| !v[[r, j]].finite()) {
-                return CoreError::non_finite("log_std", at);
+                return Some(CoreError::non_finite("log_std", at));
             }
             if let Some(a) = a {
                 let x = a[[r, j]];
                 if self.check && !x.finite() {
-                    return CoreError::non_finite(a_name, at);
+                    return Some(CoreError::non_finite(a_name, at));
                 }
                 if let (Some(bd), false) = (self.bounds, self.pre_given) {
                     let v = x.to_f64();
                     if v < bd.low[j] || v > bd.high[j] {
-                        return CoreError::input_at(
+                        return Some(CoreError::input_at(
                             "actions",
                             at,
                             format!(
                                 "= {v} is outside [low, high] = [{}, {}]",
                                 bd.low[j], bd.high[j]
                             ),
-                        );
+                        ));
                     }
                 }
             }
         }
-        CoreError::input_at("mean", At::Flat(row), "holds a bad value")
+        None
     }
+}
+
+/// `c + sum_j x[r, j]` per row of a row-major `[n, d]` buffer, in axis order.
+#[inline(always)]
+fn row_sums(x: &[f64], n: usize, d: usize, c: f64) -> Buf {
+    let mut out = Buf::stale(n);
+    if d == 0 {
+        out.fill(c);
+        return out;
+    }
+    for (o, row) in out.iter_mut().zip(x.chunks_exact(d)) {
+        *o = row.iter().fold(0.0, |a, &v| a + v) + c;
+    }
+    out
 }
 
 fn write_rows<F: Real>(v: &[f64], o: ArrayViewMutD<'_, F>) {
@@ -714,4 +701,155 @@ pub fn gaussian_kl<F: Real>(
         Ok(())
     });
     first_error(results)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::core::heads::squashed::{squashed_log_prob, squashed_sample, Bounds};
+    use ndarray::{Array2, ArrayD, IxDyn, ShapeBuilder};
+
+    fn normal<'a>(mean: &'a ArrayD<f64>, ls: LogStd<'a, f64>) -> Normal<'a, f64> {
+        Normal {
+            mean: mean.view(),
+            log_std: ls,
+            check_finite: true,
+        }
+    }
+
+    #[test]
+    fn log_prob_entropy_and_score_match_definitions() {
+        let (b, d) = (300, 5);
+        let mean = Array2::from_shape_fn((b, d), |(i, j)| ((i * 7 + j) % 11) as f64 * 0.3 - 1.5);
+        let ls = Array2::from_shape_fn((b, d), |(i, j)| ((i + 3 * j) % 5) as f64 * 0.2 - 0.4);
+        let act = Array2::from_shape_fn((b, d).f(), |(i, j)| ((i * 3 + j) % 7) as f64 * 0.5 - 1.0);
+        let (mean, ls, act) = (mean.into_dyn(), ls.into_dyn(), act.into_dyn());
+        for par in [Par::Seq, Par::Rayon] {
+            let mut lp = ArrayD::zeros(IxDyn(&[b]));
+            let mut h = ArrayD::zeros(IxDyn(&[b]));
+            let mut gm = ArrayD::zeros(IxDyn(&[b, d]));
+            let mut gs = ArrayD::zeros(IxDyn(&[b, d]));
+            let nrm = normal(&mean, LogStd::PerRow(ls.view()));
+            let out = GaussOut {
+                log_prob: Some(Out::new("lp", lp.view_mut())),
+                entropy: Some(Out::new("h", h.view_mut())),
+                ..Default::default()
+            };
+            gaussian(&nrm, Some(act.view()), None, out, par).unwrap();
+            let out = GaussOut {
+                d_mean: Some(Out::new("gm", gm.view_mut())),
+                d_log_std: Some(Out::new("gs", gs.view_mut())),
+                ..Default::default()
+            };
+            gaussian(&nrm, Some(act.view()), None, out, par).unwrap();
+            for i in 0..b {
+                let (mut want_lp, mut want_h) = (0.0, 0.0);
+                for j in 0..d {
+                    let s = ls[[i, j]].exp();
+                    let z = (act[[i, j]] - mean[[i, j]]) / s;
+                    want_lp += -0.5 * z * z - s.ln() - HALF_LN_2PI;
+                    want_h += ls[[i, j]] + 0.5 + HALF_LN_2PI;
+                    assert!((gm[[i, j]] - z / s).abs() < 1e-12);
+                    assert!((gs[[i, j]] - (z * z - 1.0)).abs() < 1e-12);
+                }
+                assert!((lp[[i]] - want_lp).abs() < 1e-12);
+                assert!((h[[i]] - want_h).abs() < 1e-12);
+            }
+        }
+    }
+
+    #[test]
+    fn samples_and_squash_round_trip() {
+        let mean =
+            Array2::from_shape_fn((2000, 3), |(i, j)| (i % 5) as f64 * 0.1 + j as f64).into_dyn();
+        let nrm = normal(&mean, LogStd::Shared(vec![-1.0, 0.0, 0.5]));
+        let bounds = Bounds::new(&[-2.0], &[1.0, 3.0, 5.0], 3).unwrap();
+        let mut a = ArrayD::zeros(IxDyn(&[2000, 3]));
+        let mut u = ArrayD::zeros(IxDyn(&[2000, 3]));
+        squashed_sample(
+            &nrm,
+            9,
+            &bounds,
+            Out::new("a", a.view_mut()),
+            Out::new("u", u.view_mut()),
+            Par::Rayon,
+        )
+        .unwrap();
+        let mut g = ArrayD::zeros(IxDyn(&[2000, 3]));
+        let out = GaussOut {
+            sample: Some(Out::new("g", g.view_mut())),
+            ..Default::default()
+        };
+        gaussian(&nrm, None, Some(9), out, Par::Seq).unwrap();
+        assert_eq!(g, u);
+        for (j, (&lo, &hi)) in bounds.low.iter().zip(&bounds.high).enumerate() {
+            for i in 0..2000 {
+                let x = a[[i, j]];
+                assert!(lo <= x && x <= hi);
+                let want = lo + (hi - lo) * (u[[i, j]].tanh() + 1.0) / 2.0;
+                assert!((x - want).abs() < 1e-12);
+            }
+        }
+        let mut lp1 = ArrayD::zeros(IxDyn(&[2000]));
+        let mut lp2 = ArrayD::zeros(IxDyn(&[2000]));
+        squashed_log_prob(
+            &nrm,
+            a.view(),
+            None,
+            &bounds,
+            Out::new("o", lp1.view_mut()),
+            Par::Seq,
+        )
+        .unwrap();
+        squashed_log_prob(
+            &nrm,
+            a.view(),
+            Some(u.view()),
+            &bounds,
+            Out::new("o", lp2.view_mut()),
+            Par::Seq,
+        )
+        .unwrap();
+        for i in 0..2000 {
+            assert!((lp1[[i]] - lp2[[i]]).abs() < 1e-6 * (1.0 + lp2[[i]].abs()));
+        }
+        a[[7, 1]] = 3.5;
+        let e = squashed_log_prob(
+            &nrm,
+            a.view(),
+            None,
+            &bounds,
+            Out::new("o", lp1.view_mut()),
+            Par::Seq,
+        )
+        .unwrap_err();
+        assert!(matches!(
+            e,
+            CoreError::Input {
+                arg: "actions",
+                at: Some(At::RowCol(7, 1)),
+                ..
+            }
+        ));
+    }
+
+    #[test]
+    fn kl_is_zero_for_equal_and_matches_closed_form() {
+        let mp = Array2::from_shape_fn((50, 4), |(i, j)| (i * j % 7) as f64 * 0.2).into_dyn();
+        let mq = mp.mapv(|v| v + 0.3);
+        let p = normal(&mp, LogStd::Shared(vec![0.1, -0.2, 0.3, 0.0]));
+        let q = normal(&mq, LogStd::Shared(vec![0.0, 0.0, -0.5, 0.2]));
+        let mut o = ArrayD::zeros(IxDyn(&[50]));
+        gaussian_kl(&p, &p, Out::new("o", o.view_mut()), Par::Seq).unwrap();
+        assert!(o.iter().all(|&v| v == 0.0));
+        gaussian_kl(&p, &q, Out::new("o", o.view_mut()), Par::Seq).unwrap();
+        let (sp, sq) = ([0.1f64, -0.2, 0.3, 0.0], [0.0f64, 0.0, -0.5, 0.2]);
+        let want: f64 = (0..4)
+            .map(|j| {
+                let (a, b) = (sp[j].exp(), sq[j].exp());
+                (b / a).ln() + (a * a + 0.09) / (2.0 * b * b) - 0.5
+            })
+            .sum();
+        assert!(o.iter().all(|&v| (v - want).abs() < 1e-12));
+    }
 }

@@ -377,6 +377,28 @@ pub(crate) fn gather_t<T: Copy, U>(
     }
 }
 
+/// Copy a `[n, k]` block into row-major `f64` scratch (`z[r * k + j]`).
+#[inline(always)]
+pub(crate) fn gather_rows<F: Real>(
+    x: &ndarray::ArrayView2<'_, F>,
+    z: &mut [f64],
+    f: impl Fn(F) -> f64,
+) {
+    match x.as_slice() {
+        Some(s) => z.iter_mut().zip(s).for_each(|(d, &v)| *d = f(v)),
+        None => z.iter_mut().zip(x.iter()).for_each(|(d, &v)| *d = f(v)),
+    }
+}
+
+/// Store row-major `f64` scratch into a `[n, k]` output block, rounding once.
+#[inline(always)]
+pub(crate) fn scatter_rows<F: Real>(z: &[f64], mut o: ndarray::ArrayViewMut2<'_, F>) {
+    match o.as_slice_mut() {
+        Some(s) => s.iter_mut().zip(z).for_each(|(d, &v)| *d = F::from_f64(v)),
+        None => o.iter_mut().zip(z).for_each(|(d, &v)| *d = F::from_f64(v)),
+    }
+}
+
 /// Store column-major `f64` scratch into a `[n, k]` output block, rounding
 /// once; a C-contiguous block is written in memory order.
 #[inline(always)]
