@@ -25,23 +25,35 @@ pub fn all_finite<F: Real>(s: &[F]) -> bool {
 
 const CHUNK: usize = 1 << 16;
 
-/// Index of the first non-finite element, scanning fixed chunks in parallel.
-pub fn first_non_finite_1d<F: Real>(a: &ArrayView1<'_, F>, par: Par) -> Option<usize> {
-    match a.as_slice() {
-        Some(sl) => {
-            let starts: Vec<usize> = (0..sl.len()).step_by(CHUNK).collect();
-            let found = par.map(starts, |s0| {
-                let ch = &sl[s0..(s0 + CHUNK).min(sl.len())];
-                if all_finite(ch) {
-                    None
-                } else {
-                    ch.iter().position(|x| !x.finite()).map(|k| s0 + k)
-                }
-            });
-            found.into_iter().flatten().next()
+/// Index of the first non-finite element of a slice, scanning fixed chunks
+/// in parallel (the chunking never depends on the thread count).
+pub fn first_non_finite_slice<F: Real>(sl: &[F], par: Par) -> Option<usize> {
+    let starts: Vec<usize> = (0..sl.len()).step_by(CHUNK).collect();
+    let found = par.map(starts, |s0| {
+        let ch = &sl[s0..(s0 + CHUNK).min(sl.len())];
+        if all_finite(ch) {
+            None
+        } else {
+            ch.iter().position(|x| !x.finite()).map(|k| s0 + k)
         }
+    });
+    found.into_iter().flatten().next()
+}
+
+/// Index (logical order) of the first non-finite element of any view.
+pub fn first_non_finite_any<F: Real, D: ndarray::Dimension>(
+    a: &ndarray::ArrayView<'_, F, D>,
+    par: Par,
+) -> Option<usize> {
+    match a.as_slice() {
+        Some(sl) => first_non_finite_slice(sl, par),
         None => a.iter().position(|x| !x.finite()),
     }
+}
+
+/// Index of the first non-finite element of a 1-D view.
+pub fn first_non_finite_1d<F: Real>(a: &ArrayView1<'_, F>, par: Par) -> Option<usize> {
+    first_non_finite_any(a, par)
 }
 
 #[cfg(test)]

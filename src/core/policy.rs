@@ -455,25 +455,7 @@ fn group(
 
 /// The first non-finite element in logical row-major order.
 fn first_non_finite<F: Real>(a: &ArrayViewD<'_, F>, par: Par) -> Option<usize> {
-    if let Some(sl) = a.as_slice() {
-        let chunks: Vec<(usize, &[F])> = sl
-            .chunks(BLOCK)
-            .enumerate()
-            .map(|(i, c)| (i * BLOCK, c))
-            .collect();
-        return par
-            .map(chunks, |(off, c)| {
-                if super::finite::all_finite(c) {
-                    None
-                } else {
-                    c.iter().position(|x| !x.finite()).map(|k| off + k)
-                }
-            })
-            .into_iter()
-            .flatten()
-            .next();
-    }
-    a.iter().position(|x| !x.finite())
+    super::finite::first_non_finite_any(a, par)
 }
 
 /// A 0-d or N-d view as a view of at least one axis (a scalar becomes `[1]`).
