@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+_PLACES = ("partition ", "collection")
+
 
 class StoredError(Exception):
     """Bad stored input: names the shard, the column and the first offending step.
@@ -20,7 +22,9 @@ class StoredError(Exception):
     def __str__(self) -> str:
         where = []
         if self.shard is not None:
-            where.append(f"shard {self.shard}")
+            # in-memory collections name their parts "partition K" / "collection"
+            named = self.shard.startswith(_PLACES)
+            where.append(self.shard if named else f"shard {self.shard}")
         if self.column is not None:
             where.append(f"column {self.column!r}")
         if self.step is not None:
