@@ -20,6 +20,7 @@ pub mod policy;
 pub mod ragged;
 pub mod running;
 pub mod scan;
+pub mod simd;
 pub mod stats;
 pub mod timemajor;
 pub mod vtrace;

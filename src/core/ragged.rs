@@ -22,11 +22,23 @@
 //! Only step 2 is serial, and it touches one number per block. A single very
 //! long episode is therefore split like any other data, and since the blocks
 //! are fixed, the result is bit-identical for any thread count.
+//!
+//! Inside a block every piece is a *run* with one constant coefficient
+//! (`gamma`, or `gamma * lam`), scanned 8 steps at a time by
+//! [`super::scan::run`] straight from the inputs to the outputs (no scratch
+//! arrays unless a view is strided), compiled for the CPU's vector unit.
+//!
+//! `check_finite` costs no pass of its own: every input step enters its own
+//! output with weight 1, so the scan notes whether every output is finite,
+//! and only when one is not are the inputs searched for the first bad value
+//! (none is found when finite inputs overflowed, which is not an error). On
+//! that error the outputs hold partial results.
 
 use super::error::{check_unit, At, CoreError, CoreResult};
 use super::float::Real;
 use super::par::Par;
-use super::scan::{affine_rev, scan_rev_with, Carry};
+use super::scan::{run, run_first, Carry, Run8, Sink, Terms, W};
+use super::simd::{dispatch, finite_mark, F64x8, Kernel};
 use ndarray::{s, ArrayView1, ArrayViewMut1};
 
 /// Steps per block of the parallel scan.
@@ -152,129 +164,474 @@ impl<'a, F: Real> Pieces<'a, F> {
     }
 }
 
-/// Which recurrence: the per-step terms `(x, c)` of `y = x + c * y_next`.
+/// A block's per-step inputs as a contiguous slice: `x[t]` at absolute step
+/// `t` is `data[t - base]`. Contiguous views are borrowed; others are copied
+/// into per-worker scratch, one block at a time.
+#[inline(always)]
+fn stage<'s, F: Real>(
+    view: &'s ArrayView1<'_, F>,
+    lo: usize,
+    hi: usize,
+    buf: &'s mut Vec<F>,
+) -> &'s [F] {
+    match view.as_slice() {
+        Some(all) => &all[lo..hi],
+        None => {
+            buf.clear();
+            buf.extend(view.slice(s![lo..hi]).iter().copied());
+            buf
+        }
+    }
+}
+
+/// `x = r` (discounted returns).
+struct RetTerms<'s, F> {
+    r: &'s [F],
+    base: usize,
+}
+
+impl<F: Real> Terms for RetTerms<'_, F> {
+    #[inline(always)]
+    fn x8(&self, t: usize) -> F64x8 {
+        let r = &self.r[t - self.base..t - self.base + W];
+        let mut x = [0.0f64; W];
+        for (x, r) in x.iter_mut().zip(r) {
+            *x = r.to_f64();
+        }
+        F64x8(x)
+    }
+    #[inline(always)]
+    fn x1(&self, t: usize) -> f64 {
+        self.r[t - self.base].to_f64()
+    }
+}
+
+/// `x = delta = r + gamma * v[t+1] - v[t]` (GAE inside a piece).
+struct GaeTerms<'s, F> {
+    r: &'s [F],
+    v: &'s [F],
+    base: usize,
+    gamma: f64,
+}
+
+impl<F: Real> Terms for GaeTerms<'_, F> {
+    #[inline(always)]
+    fn x8(&self, t: usize) -> F64x8 {
+        let i = t - self.base;
+        let r = &self.r[i..i + W];
+        let v = &self.v[i..i + W + 1];
+        let mut x = [0.0f64; W];
+        for (j, x) in x.iter_mut().enumerate() {
+            *x = r[j].to_f64() + self.gamma * v[j + 1].to_f64() - v[j].to_f64();
+        }
+        F64x8(x)
+    }
+    #[inline(always)]
+    fn x1(&self, t: usize) -> f64 {
+        let i = t - self.base;
+        self.r[i].to_f64() + self.gamma * self.v[i + 1].to_f64() - self.v[i].to_f64()
+    }
+}
+
+/// Stores `y` rounded to `F` (returns, or advantages alone).
+///
+/// `poison` sums `y - y` over every output: 0 while all are finite, NaN
+/// after any is not. Every input step enters its own output with weight 1, so
+/// a non-finite input always shows here, at two vector operations per 8 steps
+/// instead of a separate pass over the inputs.
+struct OneOut<'o, F> {
+    out: &'o mut [F],
+    base: usize,
+    poison: F64x8,
+}
+
+impl<F: Real> Sink for OneOut<'_, F> {
+    #[inline(always)]
+    fn put8(&mut self, t: usize, y: &F64x8) {
+        let o = &mut self.out[t - self.base..t - self.base + W];
+        for (o, &y) in o.iter_mut().zip(&y.0) {
+            *o = F::from_f64(y);
+        }
+        self.poison = self.poison + y.finite_marks();
+    }
+    #[inline(always)]
+    fn put1(&mut self, t: usize, y: f64) {
+        self.out[t - self.base] = F::from_f64(y);
+        self.poison.0[0] += finite_mark(y);
+    }
+}
+
+/// Stores the advantage `y` and the return `y + v`.
+/// `poison` as for [`OneOut`].
+struct GaeOut<'o, 's, F> {
+    adv: &'o mut [F],
+    ret: &'o mut [F],
+    v: &'s [F],
+    base: usize,
+    poison: F64x8,
+}
+
+impl<F: Real> Sink for GaeOut<'_, '_, F> {
+    #[inline(always)]
+    fn put8(&mut self, t: usize, y: &F64x8) {
+        let i = t - self.base;
+        let (a, r, v) = (
+            &mut self.adv[i..i + W],
+            &mut self.ret[i..i + W],
+            &self.v[i..i + W],
+        );
+        for (j, &y) in y.0.iter().enumerate() {
+            a[j] = F::from_f64(y);
+            r[j] = F::from_f64(y + v[j].to_f64());
+        }
+        self.poison = self.poison + y.finite_marks();
+    }
+    #[inline(always)]
+    fn put1(&mut self, t: usize, y: f64) {
+        let i = t - self.base;
+        self.adv[i] = F::from_f64(y);
+        self.ret[i] = F::from_f64(y + self.v[i].to_f64());
+        self.poison.0[0] += finite_mark(y);
+    }
+}
+
+/// Which recurrence, with its constants.
 #[derive(Clone, Copy)]
 enum Kind {
     Returns { gamma: f64 },
     Gae { gamma: f64, lam: f64 },
 }
 
-struct Inputs<'a, 'b, 'p, F> {
-    r: ArrayView1<'a, F>,
-    v: Option<ArrayView1<'a, F>>,
-    pieces: &'b Pieces<'p, F>,
-    kind: Kind,
+impl Kind {
+    /// The coefficient inside a piece.
+    fn c(self) -> f64 {
+        match self {
+            Kind::Returns { gamma } => gamma,
+            Kind::Gae { gamma, lam } => gamma * lam,
+        }
+    }
 }
 
-impl<F: Real> Inputs<'_, '_, '_, F> {
-    /// Fill `x`, `c` for steps `[s0, s1)`; the step after `s1 - 1` is read
-    /// from the inputs when the piece continues (values only).
-    fn terms(&self, s0: usize, s1: usize, x: &mut [f64], c: &mut [f64]) {
-        let p = self.pieces;
-        let mut e = p.piece_of(s0);
-        let mut s = s0;
-        while s < s1 {
-            while p.offsets[e + 1] <= s {
-                e += 1;
-            }
-            let end = p.offsets[e + 1];
-            let stop = end.min(s1);
-            let (tv, ta) = p.tail(e);
-            let (xs, cs) = (&mut x[s - s0..stop - s0], &mut c[s - s0..stop - s0]);
-            let rs = self.r.slice(s![s..stop]);
-            match self.kind {
-                Kind::Returns { gamma } => {
-                    match rs.as_slice() {
-                        Some(sl) => xs.iter_mut().zip(sl).for_each(|(x, r)| *x = r.to_f64()),
-                        None => xs
-                            .iter_mut()
-                            .zip(rs.iter())
-                            .for_each(|(x, r)| *x = r.to_f64()),
-                    }
-                    cs.fill(gamma);
-                    if stop == end {
-                        let k = stop - s - 1;
-                        xs[k] += gamma * tv;
-                        cs[k] = 0.0;
-                    }
-                }
-                Kind::Gae { gamma, lam } => {
-                    let Some(v) = self.v.as_ref() else { return };
-                    let gl = gamma * lam;
-                    // Steps whose successor lies inside the piece.
-                    let inner = stop.min(end - 1).max(s);
-                    let k_in = inner - s;
-                    let vt = v.slice(s![s..stop]);
-                    let vn = v.slice(s![s + 1..inner + 1]);
-                    match (rs.as_slice(), vt.as_slice(), vn.as_slice()) {
-                        (Some(r), Some(vt), Some(vn)) => {
-                            for ((((x, r), v), w), _) in
-                                xs.iter_mut().zip(r).zip(vt).zip(vn).zip(0..k_in)
-                            {
-                                *x = r.to_f64() + gamma * w.to_f64() - v.to_f64();
-                            }
-                        }
-                        _ => {
-                            for ((((x, r), v), w), _) in xs
-                                .iter_mut()
-                                .zip(rs.iter())
-                                .zip(vt.iter())
-                                .zip(vn.iter())
-                                .zip(0..k_in)
-                            {
-                                *x = r.to_f64() + gamma * w.to_f64() - v.to_f64();
-                            }
-                        }
-                    }
-                    cs.fill(gl);
-                    if stop == end {
-                        let k = stop - s - 1;
-                        xs[k] = rs[k].to_f64() + gamma * tv - vt[k].to_f64() + gl * ta;
-                        cs[k] = 0.0;
-                    }
-                }
-            }
-            s = stop;
+/// One block `[s0, s1)` of the scan.
+///
+/// `carry: Some(y)` scans the whole block with `y` entering at `s1` and stores
+/// every output; `None` computes only the block's affine map (its head
+/// segment: from `s0` to the end of the piece it starts in, or `s1`).
+struct BlockJob<'j, 'a, 'p, F: Real> {
+    at: Block<'j, 'a, 'p, F>,
+    scratch: &'j mut Scratch<F>,
+    outs: Option<BlockOuts<'j, 'a, F>>,
+}
+
+/// What a block reads.
+struct Block<'j, 'a, 'p, F: Real> {
+    r: &'j ArrayView1<'a, F>,
+    v: Option<&'j ArrayView1<'a, F>>,
+    pieces: &'j Pieces<'p, F>,
+    kind: Kind,
+    k: &'j Run8,
+    s0: usize,
+    s1: usize,
+    carry: f64,
+}
+
+/// A mutable view's slice, if contiguous (reborrowing the view).
+fn slice_of<'x, F>(v: &'x mut ArrayViewMut1<'_, F>) -> Option<&'x mut [F]> {
+    v.as_slice_mut()
+}
+
+/// Per-worker staging buffers.
+struct Scratch<F> {
+    r: Vec<F>,
+    v: Vec<F>,
+    o1: Vec<F>,
+    o2: Vec<F>,
+}
+
+impl<F> Scratch<F> {
+    fn new() -> Self {
+        Scratch {
+            r: Vec::new(),
+            v: Vec::new(),
+            o1: Vec::new(),
+            o2: Vec::new(),
+        }
+    }
+}
+
+/// Output views of one block (the second only for GAE).
+struct BlockOuts<'j, 'a, F> {
+    first: &'j mut ArrayViewMut1<'a, F>,
+    second: Option<&'j mut ArrayViewMut1<'a, F>>,
+}
+
+/// The advantage at a piece's last step `t`: `r + gamma * V' - v + gl * A'`
+/// with `(V', A')` its tail (zeros if terminal).
+#[inline(always)]
+fn gae_last<F: Real>(r: F, v: F, gamma: f64, gl: f64, tail: (f64, f64)) -> f64 {
+    let x = r.to_f64() + gamma * tail.0 - v.to_f64();
+    if gl == 0.0 {
+        x
+    } else {
+        x + gl * tail.1
+    }
+}
+
+impl<F: Real> Block<'_, '_, '_, F> {
+    /// Scan `[lo, hi)` (inside one piece) with `carry` at `hi`, compiled for
+    /// this CPU's vector unit (one small kernel per run vectorises reliably).
+    #[inline(always)]
+    fn scan<T: Terms, S: Sink>(
+        &self,
+        terms: &T,
+        sink: Option<&mut S>,
+        lo: usize,
+        hi: usize,
+        carry: f64,
+    ) -> f64 {
+        match sink {
+            Some(out) => dispatch(RunJob {
+                k: self.k,
+                terms,
+                out,
+                lo,
+                hi,
+                carry,
+            }),
+            None => dispatch(FirstJob {
+                k: self.k,
+                terms,
+                lo,
+                hi,
+                carry,
+            }),
         }
     }
 
-    /// Affine map of block `[s0, s1)`: scan only its head segment.
-    fn summary(&self, s0: usize, s1: usize, x: &mut [f64], c: &mut [f64]) -> Carry {
-        let e = self.pieces.piece_of(s0);
-        let h1 = self.pieces.offsets[e + 1].min(s1);
-        let n = h1 - s0;
-        self.terms(s0, h1, &mut x[..n], &mut c[..n]);
-        // When the head piece ends inside the block its last c is 0, so the
-        // factor is 0 and the block does not depend on what follows.
-        affine_rev(&x[..n], &c[..n])
+    /// Every piece of the block (or, without a sink, only the head piece);
+    /// returns `y[s0]`.
+    fn pieces_of<T: Terms, S: Sink>(
+        &self,
+        terms: &T,
+        mut sink: Option<&mut S>,
+        r: &[F],
+        v: Option<&[F]>,
+        carry: f64,
+    ) -> f64 {
+        let (s0, s1) = (self.s0, self.s1);
+        let mut y0 = carry;
+        let p = self.pieces;
+        let mut e = p.piece_of(s0);
+        while e < p.len() && p.offsets[e] < s1 {
+            let (lo, hi) = (p.offsets[e].max(s0), p.offsets[e + 1]);
+            e += 1;
+            if hi <= lo {
+                continue;
+            }
+            let e = e - 1;
+            let y = if hi > s1 {
+                self.scan::<T, S>(terms, sink.as_deref_mut(), lo, s1, carry)
+            } else {
+                let tail = self.pieces.tail(e);
+                match (self.kind, v) {
+                    (Kind::Gae { gamma, lam }, Some(v)) => {
+                        let t = hi - 1;
+                        let a = gae_last(r[t - s0], v[t - s0], gamma, gamma * lam, tail);
+                        if let Some(s) = sink.as_deref_mut() {
+                            s.put1(t, a);
+                        }
+                        self.scan::<T, S>(terms, sink.as_deref_mut(), lo, t, a)
+                    }
+                    _ => self.scan::<T, S>(terms, sink.as_deref_mut(), lo, hi, tail.0),
+                }
+            };
+            if lo == s0 {
+                y0 = y;
+                if sink.is_none() {
+                    break;
+                }
+            }
+        }
+        y0
     }
 }
 
-/// Run the three-step blocked scan; `emit(s0, y)` stores block results.
-fn blocked<F: Real, E>(inp: &Inputs<'_, '_, '_, F>, par: Par, emit: E)
-where
-    E: Fn(usize, &[f64]) + Sync,
-{
-    let n = inp.pieces.steps();
+/// [`run`] as a [`Kernel`].
+struct RunJob<'j, T, S> {
+    k: &'j Run8,
+    terms: &'j T,
+    out: &'j mut S,
+    lo: usize,
+    hi: usize,
+    carry: f64,
+}
+
+impl<T: Terms, S: Sink> Kernel for RunJob<'_, T, S> {
+    type Output = f64;
+    #[inline(always)]
+    fn run<const FMA: bool>(self) -> f64 {
+        run::<FMA, T, S>(self.k, self.terms, self.out, self.lo, self.hi, self.carry)
+    }
+}
+
+/// [`run_first`] as a [`Kernel`].
+struct FirstJob<'j, T> {
+    k: &'j Run8,
+    terms: &'j T,
+    lo: usize,
+    hi: usize,
+    carry: f64,
+}
+
+impl<T: Terms> Kernel for FirstJob<'_, T> {
+    type Output = f64;
+    #[inline(always)]
+    fn run<const FMA: bool>(self) -> f64 {
+        run_first::<FMA, T>(self.k, self.terms, self.lo, self.hi, self.carry)
+    }
+}
+
+impl<F: Real> BlockJob<'_, '_, '_, F> {
+    /// `y[s0]` of the block (with outputs: all stored; without: the head
+    /// only), and whether every output stored is finite.
+    fn go(self) -> (f64, bool) {
+        let BlockJob { at, scratch, outs } = self;
+        let (s0, s1) = (at.s0, at.s1);
+        let n = at.pieces.steps();
+        // Steps read: the block, or only its head segment for a map; GAE also
+        // needs the value after the last step read when that piece continues.
+        let end = if outs.is_some() {
+            s1
+        } else {
+            let e = at.pieces.piece_of(s0);
+            at.pieces.offsets[e + 1].min(s1)
+        };
+        let Scratch { r, v, o1, o2 } = scratch;
+        let rs = stage(at.r, s0, end, r);
+        let m = s1 - s0;
+        match (at.kind, at.v) {
+            (Kind::Returns { .. }, _) | (_, None) => {
+                let terms = RetTerms { r: rs, base: s0 };
+                let Some(BlockOuts { first, .. }) = outs else {
+                    let y = at.pieces_of::<_, OneOut<F>>(&terms, None, rs, None, at.carry);
+                    return (y, true);
+                };
+                let direct = slice_of(first).is_some();
+                if !direct {
+                    o1.clear();
+                    o1.resize(m, F::from_f64(0.0));
+                }
+                let (y, poison) = {
+                    let out = match slice_of(first) {
+                        Some(d) => d,
+                        None => &mut o1[..],
+                    };
+                    let mut sink = OneOut {
+                        out,
+                        base: s0,
+                        poison: F64x8::splat(0.0),
+                    };
+                    let y = at.pieces_of::<_, _>(&terms, Some(&mut sink), rs, None, at.carry);
+                    (y, sink.poison)
+                };
+                if !direct {
+                    first.iter_mut().zip(o1.iter()).for_each(|(d, &x)| *d = x);
+                }
+                (y, poison.0.iter().all(|&p| p == 0.0))
+            }
+            (Kind::Gae { gamma, .. }, Some(vv)) => {
+                let vs = stage(vv, s0, (end + 1).min(n), v);
+                let terms = GaeTerms {
+                    r: rs,
+                    v: vs,
+                    base: s0,
+                    gamma,
+                };
+                let Some(BlockOuts {
+                    first,
+                    second: Some(second),
+                }) = outs
+                else {
+                    let y = at.pieces_of::<_, OneOut<F>>(&terms, None, rs, Some(vs), at.carry);
+                    return (y, true);
+                };
+                let direct = slice_of(first).is_some() && slice_of(second).is_some();
+                if !direct {
+                    o1.clear();
+                    o1.resize(m, F::from_f64(0.0));
+                    o2.clear();
+                    o2.resize(m, F::from_f64(0.0));
+                }
+                let (y, poison) = {
+                    let (adv, ret) = match (direct, slice_of(first), slice_of(second)) {
+                        (true, Some(a), Some(b)) => (a, b),
+                        _ => (&mut o1[..], &mut o2[..]),
+                    };
+                    let mut sink = GaeOut {
+                        adv,
+                        ret,
+                        v: vs,
+                        base: s0,
+                        poison: F64x8::splat(0.0),
+                    };
+                    let y = at.pieces_of::<_, _>(&terms, Some(&mut sink), rs, Some(vs), at.carry);
+                    (y, sink.poison)
+                };
+                if !direct {
+                    first.iter_mut().zip(o1.iter()).for_each(|(d, &x)| *d = x);
+                    second.iter_mut().zip(o2.iter()).for_each(|(d, &x)| *d = x);
+                }
+                (y, poison.0.iter().all(|&p| p == 0.0))
+            }
+        }
+    }
+}
+
+/// Run the three-step blocked scan over every block, writing `first` (and
+/// `second` for GAE: advantages and returns) block by block. Returns whether
+/// every output is finite.
+fn blocked<F: Real>(
+    r: &ArrayView1<'_, F>,
+    v: Option<&ArrayView1<'_, F>>,
+    pieces: &Pieces<'_, F>,
+    kind: Kind,
+    first: ArrayViewMut1<'_, F>,
+    second: Option<ArrayViewMut1<'_, F>>,
+    par: Par,
+) -> bool {
+    let n = pieces.steps();
     if n == 0 {
-        return;
+        return true;
     }
     let nb = n.div_ceil(BLOCK);
     let bounds = |b: usize| (b * BLOCK, ((b + 1) * BLOCK).min(n));
-    // Per-worker scratch: x, c and the scan's products, one block each.
-    // Sized to the data so a short call does not zero a whole block.
-    let cap = BLOCK.min(n);
-    let init = || {
-        (
-            vec![0.0f64; cap],
-            vec![0.0f64; cap],
-            Vec::<f64>::with_capacity(cap),
-        )
-    };
+    let k = Run8::new(kind.c());
     // 1. Affine maps of every block but the first (its map is never needed).
-    let maps: Vec<Carry> = par.map_init((1..nb).collect(), init, |(x, c, _), b| {
+    let maps: Vec<Carry> = par.map_init((1..nb).collect(), Scratch::new, |scr, b| {
         let (s0, s1) = bounds(b);
-        inp.summary(s0, s1, &mut x[..s1 - s0], &mut c[..s1 - s0])
+        let e = pieces.piece_of(s0);
+        let ends_inside = pieces.offsets[e + 1] <= s1;
+        let job = BlockJob {
+            at: Block {
+                r,
+                v,
+                pieces,
+                kind,
+                k: &k,
+                s0,
+                s1,
+                carry: 0.0,
+            },
+            scratch: scr,
+            outs: None,
+        };
+        let (head, _) = job.go();
+        let factor = if ends_inside {
+            0.0
+        } else {
+            k.c().powi((s1 - s0) as i32)
+        };
+        Carry { head, factor }
     });
     // 2. Incoming carries, right to left. The last block ends a piece.
     let mut carry = vec![0.0f64; nb];
@@ -282,13 +639,45 @@ where
         carry[b] = maps[b].apply(carry[b + 1]);
     }
     // 3. Every block with its carry.
-    par.for_each_init((0..nb).collect(), init, |(x, c, p), b| {
+    let firsts = split_blocks(first);
+    let items: Vec<(usize, ArrayViewMut1<'_, F>, Option<ArrayViewMut1<'_, F>>)> = match second {
+        Some(sec) => firsts
+            .into_iter()
+            .zip(split_blocks(sec))
+            .enumerate()
+            .map(|(b, (a, c))| (b, a, Some(c)))
+            .collect(),
+        None => firsts
+            .into_iter()
+            .enumerate()
+            .map(|(b, a)| (b, a, None))
+            .collect(),
+    };
+    let finite = std::sync::atomic::AtomicBool::new(true);
+    par.for_each_init(items, Scratch::new, |scr, (b, mut a, mut c)| {
         let (s0, s1) = bounds(b);
-        let (x, c) = (&mut x[..s1 - s0], &mut c[..s1 - s0]);
-        inp.terms(s0, s1, x, c);
-        scan_rev_with(x, c, carry[b], p);
-        emit(s0, x);
+        let job = BlockJob {
+            at: Block {
+                r,
+                v,
+                pieces,
+                kind,
+                k: &k,
+                s0,
+                s1,
+                carry: carry[b],
+            },
+            scratch: scr,
+            outs: Some(BlockOuts {
+                first: &mut a,
+                second: c.as_mut(),
+            }),
+        };
+        if !job.go().1 {
+            finite.store(false, std::sync::atomic::Ordering::Relaxed);
+        }
     });
+    finite.into_inner()
 }
 
 /// Split a 1-D output view into the blocks of the scan.
@@ -345,25 +734,20 @@ pub fn discounted_returns<F: Real>(
     check_unit("gamma", gamma)?;
     check_len("out", out.len(), rewards.len())?;
     check_len("rewards", rewards.len(), pieces.steps())?;
-    check_steps("rewards", &rewards, check_finite, par)?;
-    let inp = Inputs {
-        r: rewards,
-        v: None,
+    let finite = blocked(
+        &rewards,
+        None,
         pieces,
-        kind: Kind::Returns { gamma },
-    };
-    let outs: Vec<std::sync::Mutex<ArrayViewMut1<'_, F>>> = split_blocks(out)
-        .into_iter()
-        .map(std::sync::Mutex::new)
-        .collect();
-    blocked(&inp, par, |s0, y| {
-        if let Ok(mut o) = outs[s0 / BLOCK].lock() {
-            match o.as_slice_mut() {
-                Some(d) => d.iter_mut().zip(y).for_each(|(o, &y)| *o = F::from_f64(y)),
-                None => o.iter_mut().zip(y).for_each(|(o, &y)| *o = F::from_f64(y)),
-            }
-        }
-    });
+        Kind::Returns { gamma },
+        out,
+        None,
+        par,
+    );
+    if !finite {
+        // Some output is not finite: find the input that made it so (none
+        // when finite inputs overflowed, which is not an error).
+        check_steps("rewards", &rewards, check_finite, par)?;
+    }
     Ok(())
 }
 
@@ -390,31 +774,20 @@ pub fn gae<F: Real>(
     check_len("out[0]", adv.len(), rewards.len())?;
     check_len("out[1]", ret.len(), rewards.len())?;
     check_len("rewards", rewards.len(), pieces.steps())?;
-    check_steps("rewards", &rewards, check_finite, par)?;
-    check_steps("values", &values, check_finite, par)?;
-    let inp = Inputs {
-        r: rewards,
-        v: Some(values),
+    let finite = blocked(
+        &rewards,
+        Some(&values),
         pieces,
-        kind: Kind::Gae { gamma, lam },
-    };
-    type Pair<'x, F> = (ArrayViewMut1<'x, F>, ArrayViewMut1<'x, F>);
-    let outs: Vec<std::sync::Mutex<Pair<'_, F>>> = split_blocks(adv)
-        .into_iter()
-        .zip(split_blocks(ret))
-        .map(std::sync::Mutex::new)
-        .collect();
-    blocked(&inp, par, |s0, y| {
-        if let Ok(mut g) = outs[s0 / BLOCK].lock() {
-            let (a, r) = &mut *g;
-            let v = values.slice(s![s0..s0 + y.len()]);
-            a.iter_mut().zip(y).for_each(|(o, &y)| *o = F::from_f64(y));
-            r.iter_mut()
-                .zip(y)
-                .zip(v.iter())
-                .for_each(|((o, &y), v)| *o = F::from_f64(y + v.to_f64()));
-        }
-    });
+        Kind::Gae { gamma, lam },
+        adv,
+        Some(ret),
+        par,
+    );
+    if !finite {
+        // As in `discounted_returns`: only now look for the bad input.
+        check_steps("rewards", &rewards, check_finite, par)?;
+        check_steps("values", &values, check_finite, par)?;
+    }
     Ok(())
 }
 
@@ -668,6 +1041,84 @@ mod tests {
             assert!((a1[t] - a[t]).abs() < 1e-12);
             assert!((a2[t] - a[t + 3]).abs() < 1e-12);
         }
+    }
+
+    #[test]
+    fn a_bad_input_is_found_after_the_scan_and_overflow_is_not_an_error() {
+        let s = 3 * BLOCK + 77;
+        let lens = Array1::from(vec![5i64, (s - 105) as i64, 100]);
+        let p = Pieces::<f32>::new(lens.view(), s, None, None, None, true).unwrap();
+        let mut r = Array1::from_elem(s, 0.5f32);
+        let v = Array1::from_elem(s, 0.25f32);
+        let mut a = Array1::zeros(s);
+        let mut b = Array1::zeros(s);
+        r[2 * BLOCK + 9] = f32::NAN;
+        let e = discounted_returns(r.view(), &p, 0.9, true, a.view_mut(), Par::Seq).unwrap_err();
+        assert_eq!(e, CoreError::non_finite("rewards", At::Flat(2 * BLOCK + 9)));
+        // without the check the NaN stays inside its piece
+        discounted_returns(r.view(), &p, 0.9, false, a.view_mut(), Par::Seq).unwrap();
+        assert!(a[2] == a[2] && a[s - 1] == a[s - 1] && a[2 * BLOCK + 9].is_nan());
+        r[2 * BLOCK + 9] = 0.5;
+        let mut vbad = v.clone();
+        vbad[s - 3] = f32::INFINITY;
+        let e = gae(
+            r.view(),
+            vbad.view(),
+            &p,
+            0.9,
+            0.8,
+            true,
+            a.view_mut(),
+            b.view_mut(),
+            Par::Rayon,
+        )
+        .unwrap_err();
+        assert_eq!(e, CoreError::non_finite("values", At::Flat(s - 3)));
+        // finite inputs whose float32 return overflows are not an error
+        let big = Array1::from_elem(s, 3.0e38f32);
+        discounted_returns(big.view(), &p, 1.0, true, a.view_mut(), Par::Seq).unwrap();
+        assert!(a[0].is_infinite());
+    }
+
+    #[test]
+    fn strided_views_give_the_contiguous_result() {
+        let s = 2 * BLOCK + 333;
+        let lens = Array1::from(vec![BLOCK as i64 + 1, 0, (s - BLOCK - 1) as i64]);
+        let p = Pieces::<f64>::new(lens.view(), s, None, None, None, true).unwrap();
+        let wide_r = Array1::from_shape_fn(2 * s, |i| ((i * 31) % 17) as f64 - 8.0);
+        let wide_v = Array1::from_shape_fn(2 * s, |i| ((i * 7) % 5) as f64);
+        let (r, v) = (wide_r.slice(s![..;2]), wide_v.slice(s![..;-2]));
+        let (rc, vc) = (r.to_owned(), v.to_owned());
+        let mut want = (Array1::zeros(s), Array1::zeros(s));
+        gae(
+            rc.view(),
+            vc.view(),
+            &p,
+            0.97,
+            0.9,
+            true,
+            want.0.view_mut(),
+            want.1.view_mut(),
+            Par::Seq,
+        )
+        .unwrap();
+        let mut out_a = Array1::zeros(2 * s);
+        let mut out_b = Array1::zeros(s);
+        gae(
+            r,
+            v,
+            &p,
+            0.97,
+            0.9,
+            true,
+            out_a.slice_mut(s![..;2]),
+            out_b.view_mut(),
+            Par::Rayon,
+        )
+        .unwrap();
+        assert_eq!(out_a.slice(s![..;2]), want.0);
+        assert_eq!(out_b, want.1);
+        assert!(out_a.slice(s![1..;2]).iter().all(|&x| x == 0.0));
     }
 
     #[test]

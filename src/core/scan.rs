@@ -1,129 +1,193 @@
-//! The reverse linear recurrence behind every return and advantage:
+//! The reverse linear recurrence behind every ragged return and advantage,
+//! over a *run*: consecutive steps inside one piece, where the coefficient is
+//! one constant `c`:
 //!
 //! ```text
-//! y[t] = x[t] + c[t] * y[t + 1],      y[n] = carry
+//! y[t] = x[t] + c * y[t + 1],      y[hi] = carry,   t = hi-1 .. lo
 //! ```
 //!
-//! Discounted returns use `x = r (+ gamma * bootstrap at an end)`,
-//! `c = gamma * (1 - end)`; GAE uses `x = delta`, `c = gamma * lam * (1 - end)`.
-//! Everything is `f64`.
+//! Discounted returns use `x = r`, `c = gamma`; GAE uses `x = delta`,
+//! `c = gamma * lam`. Everything is `f64`.
+//!
+//! One step at a time, the chain costs a multiply-add latency per step. A run
+//! is instead taken 8 steps at a time: with the block's inputs `x[0..8]`,
+//!
+//! ```text
+//! y[j] = sum_{i >= j} c^(i-j) x[i]  +  c^(8-j) * carry
+//! ```
+//!
+//! The sums do not depend on the carry, so they vectorise and overlap across
+//! blocks; only `y[0] = z[0] + c^8 * carry` is serial: one multiply-add per
+//! 8 steps. The result is the recurrence's value up to rounding (a few ulps
+//! of f64), and it depends only on the run, never on the thread count.
 
-/// Independent chains interleaved by [`scan_rev_inplace`].
-const LANES: usize = 8;
-/// Below this length the scan runs as one serial chain.
-const LANE_MIN: usize = 256;
+use super::simd::{madd, F64x8};
 
-/// `y[t] = x[t] + c[t] * y[t+1]` for `t = n-1 .. 0`, with `y[n] = carry`,
-/// computed in place over `xy` (which holds `x` on entry and `y` on exit).
-/// Returns `y[0]` (or `carry` when empty).
+/// Steps per block of a run.
+pub const W: usize = 8;
+
+/// The constants of an 8-step block for one coefficient `c`.
+#[derive(Clone, Debug)]
+pub struct Run8 {
+    c: f64,
+    /// `p0.0[i] = c^i`.
+    p0: F64x8,
+    /// `pw.0[j] = c^(8-j)`.
+    pw: F64x8,
+    k1: F64x8,
+    k2: F64x8,
+    k4: F64x8,
+}
+
+impl Run8 {
+    /// Constants for coefficient `c` (in `[0, 1]` in practice; any finite value works).
+    pub fn new(c: f64) -> Self {
+        let mut pows = [1.0f64; W + 1];
+        for k in 1..=W {
+            pows[k] = pows[k - 1] * c;
+        }
+        let mut p0 = F64x8::splat(0.0);
+        p0.0.copy_from_slice(&pows[..W]);
+        let mut pw = F64x8::splat(0.0);
+        for (j, v) in pw.0.iter_mut().enumerate() {
+            *v = pows[W - j];
+        }
+        let kd = |d: usize| {
+            let mut k = F64x8::splat(0.0);
+            for (j, v) in k.0.iter_mut().enumerate() {
+                if j + d < W {
+                    *v = pows[d];
+                }
+            }
+            k
+        };
+        Run8 {
+            c,
+            p0,
+            pw,
+            k1: kd(1),
+            k2: kd(2),
+            k4: kd(4),
+        }
+    }
+
+    /// The coefficient.
+    #[inline(always)]
+    pub fn c(&self) -> f64 {
+        self.c
+    }
+
+    /// `y[0..8]` of one block from its inputs and the carry `y[8]`: a
+    /// three-step in-register scan (lane `j` adds `c^d` times lane `j + d`
+    /// for `d = 1, 2, 4`), then the carry. Only the last multiply-add depends
+    /// on the carry, so one per block is serial.
+    #[inline(always)]
+    pub fn block<const FMA: bool>(&self, x: &F64x8, carry: f64) -> F64x8 {
+        let y = self.k1.madd::<FMA>(x.shift::<1>(), *x);
+        let y = self.k2.madd::<FMA>(y.shift::<2>(), y);
+        let y = self.k4.madd::<FMA>(y.shift::<4>(), y);
+        self.pw.madd::<FMA>(F64x8::splat(carry), y)
+    }
+
+    /// `y[0]` of one block only (for affine maps: no outputs are stored).
+    #[inline(always)]
+    pub fn first<const FMA: bool>(&self, x: &F64x8, carry: f64) -> f64 {
+        // c^i x[i] summed: one lane of the block's product.
+        let mut s = [0.0f64; W];
+        for (i, v) in s.iter_mut().enumerate() {
+            *v = self.p0.0[i] * x.0[i];
+        }
+        let t = (s[0] + s[1]) + (s[2] + s[3]) + ((s[4] + s[5]) + (s[6] + s[7]));
+        madd::<FMA>(self.pw.0[0], carry, t)
+    }
+}
+
+/// Inputs of a run: `x[t]` at absolute step `t`, 8 at a time or one.
+pub trait Terms {
+    /// `x[t..t + 8]`.
+    fn x8(&self, t: usize) -> F64x8;
+    /// `x[t]`.
+    fn x1(&self, t: usize) -> f64;
+}
+
+/// Where a run's outputs go: `y[t]` at absolute step `t`.
+pub trait Sink {
+    /// Store `y[t..t + 8]`.
+    fn put8(&mut self, t: usize, y: &F64x8);
+    /// Store `y[t]`.
+    fn put1(&mut self, t: usize, y: f64);
+}
+
+/// A sink that stores nothing (to compute only a run's first value).
+pub struct Discard;
+
+impl Sink for Discard {
+    #[inline(always)]
+    fn put8(&mut self, _: usize, _: &F64x8) {}
+    #[inline(always)]
+    fn put1(&mut self, _: usize, _: f64) {}
+}
+
+/// Scan the run `[lo, hi)` right to left with `y[hi] = carry`, storing every
+/// `y[t]` in `out`; returns `y[lo]` (or `carry` when the run is empty).
 ///
-/// One serial chain costs a multiply-add latency per step. Longer inputs are
-/// cut into [`LANES`] segments scanned together with zero carry (independent
-/// chains, so the core overlaps them), also tracking the running product of
-/// `c`; then each segment's true carry follows right to left and is added as
-/// `y += prod * carry` (a vectorised pass). The segment split depends only on
-/// `n`, so the result is deterministic.
-pub fn scan_rev_inplace(xy: &mut [f64], c: &[f64], carry: f64) -> f64 {
-    scan_rev_with(xy, c, carry, &mut Vec::new())
-}
-
-/// [`scan_rev_inplace`] with caller-owned scratch for the running products
-/// (grown as needed, never shrunk), so repeated scans do not allocate.
-pub fn scan_rev_with(xy: &mut [f64], c: &[f64], carry: f64, scratch: &mut Vec<f64>) -> f64 {
-    let n = xy.len().min(c.len());
-    if n < LANE_MIN {
-        return scan_serial(&mut xy[..n], &c[..n], carry);
-    }
-    let m = n / LANES;
-    let r0 = n - LANES * m;
-    if scratch.len() < LANES * m {
-        scratch.resize(LANES * m, 0.0);
-    }
-    let p = &mut scratch[..LANES * m];
-    {
-        let (_, body) = xy[..n].split_at_mut(r0);
-        let cb = &c[r0..n];
-        let mut acc = [0.0f64; LANES];
-        let mut prod = [1.0f64; LANES];
-        for k in (0..m).rev() {
-            for l in 0..LANES {
-                let i = l * m + k;
-                acc[l] = body[i] + cont(cb[i], acc[l]);
-                prod[l] *= cb[i];
-                body[i] = acc[l];
-                p[i] = prod[l];
-            }
-        }
-        let mut cin = carry;
-        for l in (0..LANES).rev() {
-            let seg = &mut body[l * m..(l + 1) * m];
-            let ps = &p[l * m..(l + 1) * m];
-            seg.iter_mut()
-                .zip(ps)
-                .for_each(|(y, &q)| *y += cont(q, cin));
-            cin = seg[0];
-        }
-        if r0 == 0 {
-            return cin;
-        }
-        scan_serial(&mut xy[..r0], &c[..r0], cin)
-    }
-}
-
-/// The affine map `y[0] = head + factor * carry` of a segment, without
-/// storing `y`: the same lane-interleaved chains as [`scan_rev_inplace`].
-pub fn affine_rev(x: &[f64], c: &[f64]) -> Carry {
-    let n = x.len().min(c.len());
-    let (m, r0) = if n < LANE_MIN {
-        (0, n)
-    } else {
-        (n / LANES, n - LANES * (n / LANES))
-    };
-    let mut head = 0.0f64;
-    let mut factor = 1.0f64;
-    if m > 0 {
-        let (xb, cb) = (&x[r0..n], &c[r0..n]);
-        let mut acc = [0.0f64; LANES];
-        let mut prod = [1.0f64; LANES];
-        for k in (0..m).rev() {
-            for l in 0..LANES {
-                let i = l * m + k;
-                acc[l] = xb[i] + cont(cb[i], acc[l]);
-                prod[l] *= cb[i];
-            }
-        }
-        for l in (0..LANES).rev() {
-            head = acc[l] + cont(prod[l], head);
-            factor *= prod[l];
-        }
-    }
-    for i in (0..r0).rev() {
-        head = x[i] + cont(c[i], head);
-        factor *= c[i];
-    }
-    Carry { head, factor }
-}
-
-#[inline]
-fn scan_serial(xy: &mut [f64], c: &[f64], carry: f64) -> f64 {
-    let mut acc = carry;
-    for (y, &k) in xy.iter_mut().zip(c.iter()).rev() {
-        acc = *y + cont(k, acc);
-        *y = acc;
-    }
-    acc
-}
-
-/// `c * y`, but exactly 0 when `c == 0`: an episode end stops the chain even
-/// if what follows is NaN or inf (with `check_finite=False`), so a bad value
-/// never leaks into an earlier, independent episode.
+/// `c == 0` is taken exactly: `y = x`, so a non-finite carry does not leak
+/// into the run (`0 * inf` would be NaN).
 #[inline(always)]
-pub fn cont(c: f64, y: f64) -> f64 {
-    if c == 0.0 {
-        0.0
-    } else {
-        c * y
+pub fn run<const FMA: bool, T: Terms, S: Sink>(
+    k: &Run8,
+    terms: &T,
+    out: &mut S,
+    lo: usize,
+    hi: usize,
+    carry: f64,
+) -> f64 {
+    let mut y = carry;
+    if k.c == 0.0 {
+        for t in (lo..hi).rev() {
+            y = terms.x1(t);
+            out.put1(t, y);
+        }
+        return y;
     }
+    let mut t = hi;
+    while t >= lo + W {
+        t -= W;
+        let ys = k.block::<FMA>(&terms.x8(t), y);
+        out.put8(t, &ys);
+        y = ys.0[0];
+    }
+    while t > lo {
+        t -= 1;
+        y = madd::<FMA>(k.c, y, terms.x1(t));
+        out.put1(t, y);
+    }
+    y
+}
+
+/// `y[lo]` of the run `[lo, hi)` with `y[hi] = carry`, storing nothing.
+#[inline(always)]
+pub fn run_first<const FMA: bool, T: Terms>(
+    k: &Run8,
+    terms: &T,
+    lo: usize,
+    hi: usize,
+    carry: f64,
+) -> f64 {
+    let mut y = carry;
+    if k.c == 0.0 {
+        return if hi > lo { terms.x1(lo) } else { carry };
+    }
+    let mut t = hi;
+    while t >= lo + W {
+        t -= W;
+        y = k.first::<FMA>(&terms.x8(t), y);
+    }
+    while t > lo {
+        t -= 1;
+        y = madd::<FMA>(k.c, y, terms.x1(t));
+    }
+    y
 }
 
 /// The affine map a segment applies to the carry entering it from the right:
@@ -133,15 +197,20 @@ pub fn cont(c: f64, y: f64) -> f64 {
 pub struct Carry {
     /// `y[0]` of the segment computed with a zero carry.
     pub head: f64,
-    /// The product of `c` over the segment (0 once any step ends an episode).
+    /// `c^n` over the segment (0 once any step ends an episode).
     pub factor: f64,
 }
 
 impl Carry {
-    /// The first output of the segment when `carry` enters at its right end.
+    /// The first output of the segment when `carry` enters at its right end;
+    /// a factor of exactly 0 ignores the carry (even a non-finite one).
     #[inline]
     pub fn apply(self, carry: f64) -> f64 {
-        self.head + cont(self.factor, carry)
+        if self.factor == 0.0 {
+            self.head
+        } else {
+            self.head + self.factor * carry
+        }
     }
 }
 
@@ -149,83 +218,95 @@ impl Carry {
 mod tests {
     use super::*;
 
-    #[test]
-    fn matches_definition() {
-        let x = [1.0, 2.0, 3.0];
-        let c = [0.5, 0.0, 0.5];
-        let mut y = x;
-        let y0 = scan_rev_inplace(&mut y, &c, 10.0);
-        // y2 = 3 + 0.5*10 = 8; y1 = 2 + 0 * 8 = 2; y0 = 1 + 0.5*2 = 2
-        assert_eq!(y, [2.0, 2.0, 8.0]);
-        assert_eq!(y0, 2.0);
-        let mut e: [f64; 0] = [];
-        assert_eq!(scan_rev_inplace(&mut e, &[], 4.0), 4.0);
+    struct Xs<'a>(&'a [f64]);
+    impl Terms for Xs<'_> {
+        fn x8(&self, t: usize) -> F64x8 {
+            F64x8(self.0[t..t + W].try_into().unwrap())
+        }
+        fn x1(&self, t: usize) -> f64 {
+            self.0[t]
+        }
+    }
+    struct Ys(Vec<f64>);
+    impl Sink for Ys {
+        fn put8(&mut self, t: usize, y: &F64x8) {
+            self.0[t..t + W].copy_from_slice(&y.0);
+        }
+        fn put1(&mut self, t: usize, y: f64) {
+            self.0[t] = y;
+        }
+    }
+
+    /// The recurrence one step at a time, from its definition.
+    fn serial(x: &[f64], c: f64, carry: f64) -> Vec<f64> {
+        let mut y = vec![0.0; x.len()];
+        let mut acc = carry;
+        for t in (0..x.len()).rev() {
+            acc = x[t] + c * acc;
+            y[t] = acc;
+        }
+        y
+    }
+
+    fn both<const FMA: bool>(x: &[f64], c: f64, lo: usize, carry: f64) {
+        let k = Run8::new(c);
+        let mut out = Ys(vec![f64::NAN; x.len()]);
+        let y0 = run::<FMA, _, _>(&k, &Xs(x), &mut out, lo, x.len(), carry);
+        let want = serial(&x[lo..], c, carry);
+        for (t, w) in want.iter().enumerate() {
+            let got = out.0[lo + t];
+            assert!(
+                (got - w).abs() <= 1e-12 * w.abs().max(1.0),
+                "n={} c={c} t={t}: {got} vs {w}",
+                x.len()
+            );
+        }
+        let first = want.first().copied().unwrap_or(carry);
+        assert!((y0 - first).abs() <= 1e-12 * first.abs().max(1.0));
+        let f = run_first::<FMA, _>(&k, &Xs(x), lo, x.len(), carry);
+        assert!((f - first).abs() <= 1e-12 * first.abs().max(1.0));
+        assert!(
+            out.0[..lo].iter().all(|v| v.is_nan()),
+            "wrote outside the run"
+        );
     }
 
     #[test]
-    fn lanes_agree_with_one_chain() {
-        for &n in &[255usize, 256, 257, 1000, 4099, 20000] {
+    fn matches_the_recurrence() {
+        for n in [0usize, 1, 7, 8, 9, 16, 17, 100, 1001] {
             let x: Vec<f64> = (0..n)
                 .map(|i| ((i * 7919) % 113) as f64 * 0.01 - 0.5)
                 .collect();
-            let c: Vec<f64> = (0..n)
-                .map(|i| if i % 97 == 0 { 0.0 } else { 0.99 })
-                .collect();
-            let mut a = x.clone();
-            let mut b = x.clone();
-            let ya = scan_rev_inplace(&mut a, &c, 2.5);
-            let yb = scan_serial(&mut b, &c, 2.5);
-            assert!((ya - yb).abs() < 1e-12);
-            for i in 0..n {
-                assert!(
-                    (a[i] - b[i]).abs() <= 1e-12 * b[i].abs().max(1.0),
-                    "n={n} i={i}"
-                );
+            for c in [0.0, 0.5, 0.99, 1.0] {
+                for lo in [0, n / 3] {
+                    both::<false>(&x, c, lo, 2.5);
+                    both::<true>(&x, c, lo, -1.0);
+                }
             }
         }
     }
 
     #[test]
-    fn affine_map_matches_scan() {
-        for &n in &[0usize, 7, 300, 5000] {
-            let x: Vec<f64> = (0..n).map(|i| (i % 13) as f64 - 6.0).collect();
-            let mut c: Vec<f64> = vec![0.999; n];
-            let a = affine_rev(&x, &c);
-            let mut y = x.clone();
-            let full = scan_rev_inplace(&mut y, &c, 1.25);
-            assert!(
-                (a.apply(1.25) - full).abs() <= 1e-9 * full.abs().max(1.0),
-                "n={n}"
-            );
-            if n > 10 {
-                c[n / 2] = 0.0;
-                assert_eq!(affine_rev(&x, &c).factor, 0.0);
-            }
-        }
-    }
-
-    #[test]
-    fn an_end_stops_nan() {
-        for n in [5usize, 3000] {
-            let mut x = vec![1.0; n];
-            x[n - 1] = f64::NAN;
-            let mut c = vec![0.5; n];
-            c[n - 2] = 0.0;
-            scan_rev_inplace(&mut x, &c, f64::INFINITY);
-            assert!(x[n - 1].is_nan());
-            assert!(x[..n - 1].iter().all(|v| v.is_finite()));
-        }
+    fn zero_coefficient_stops_a_bad_carry() {
+        let x = [1.0, 2.0, 3.0, 4.0, 5.0, 6.0, 7.0, 8.0, 9.0];
+        let k = Run8::new(0.0);
+        let mut out = Ys(vec![0.0; 9]);
+        run::<false, _, _>(&k, &Xs(&x), &mut out, 0, 9, f64::INFINITY);
+        assert_eq!(out.0, x);
+        let c = Carry {
+            head: 1.5,
+            factor: 0.0,
+        };
+        assert_eq!(c.apply(f64::NAN), 1.5);
     }
 
     #[test]
     fn carry_composition_is_affine() {
-        let x = [1.0, -2.0, 0.25];
-        let c = [0.9, 0.8, 0.7];
-        let mut y0 = x;
-        let head = scan_rev_inplace(&mut y0, &c, 0.0);
-        let factor: f64 = c.iter().product();
-        let mut y1 = x;
-        let full = scan_rev_inplace(&mut y1, &c, 3.0);
-        assert!((Carry { head, factor }.apply(3.0) - full).abs() < 1e-15);
+        let x: Vec<f64> = (0..37).map(|i| (i % 5) as f64 - 2.0).collect();
+        let k = Run8::new(0.9);
+        let head = run_first::<false, _>(&k, &Xs(&x), 0, x.len(), 0.0);
+        let factor = 0.9f64.powi(x.len() as i32);
+        let full = run_first::<false, _>(&k, &Xs(&x), 0, x.len(), 3.0);
+        assert!((Carry { head, factor }.apply(3.0) - full).abs() < 1e-12);
     }
 }

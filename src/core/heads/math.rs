@@ -40,14 +40,7 @@ const INV_FACT: [f64; 14] = [
     1.605_904_383_682_161_3e-10,
 ];
 
-#[inline(always)]
-fn madd<const FMA: bool>(a: f64, b: f64, c: f64) -> f64 {
-    if FMA {
-        a.mul_add(b, c)
-    } else {
-        a * b + c
-    }
-}
+use crate::core::simd::{isa, madd, Isa};
 
 /// `exp(x)`; NaN stays NaN, results below 2^-1022 are 0.
 #[inline(always)]
@@ -106,49 +99,6 @@ fn ln1<const FMA: bool>(x: f64) -> f64 {
     // musl's order: s*(hfsq+R) + k*ln2_lo - hfsq + f + k*ln2_hi
     let a = madd::<FMA>(s, hfsq + r, k * LN2_LO);
     madd::<FMA>(k, LN2_HI, (a - hfsq) + f)
-}
-
-/// The instruction set the loops run with on this CPU.
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
-enum Isa {
-    Base,
-    Avx2,
-    Avx512,
-}
-
-fn isa() -> Isa {
-    use std::sync::atomic::{AtomicU8, Ordering};
-    static ISA: AtomicU8 = AtomicU8::new(0);
-    match ISA.load(Ordering::Relaxed) {
-        1 => Isa::Base,
-        2 => Isa::Avx2,
-        3 => Isa::Avx512,
-        _ => {
-            let found = detect();
-            ISA.store(
-                match found {
-                    Isa::Base => 1,
-                    Isa::Avx2 => 2,
-                    Isa::Avx512 => 3,
-                },
-                Ordering::Relaxed,
-            );
-            found
-        }
-    }
-}
-
-fn detect() -> Isa {
-    #[cfg(target_arch = "x86_64")]
-    {
-        if std::is_x86_feature_detected!("avx2") && std::is_x86_feature_detected!("fma") {
-            if std::is_x86_feature_detected!("avx512f") {
-                return Isa::Avx512;
-            }
-            return Isa::Avx2;
-        }
-    }
-    Isa::Base
 }
 
 /// Define `pub fn $name(args)` whose body (generic over `const FMA: bool`) is
