@@ -18,6 +18,7 @@ pub mod heads;
 pub mod par;
 pub mod policy;
 pub mod ragged;
+pub mod rows;
 pub mod running;
 pub mod scan;
 pub mod simd;

@@ -21,6 +21,7 @@ use super::error::{check_unit, At, CoreError, CoreResult};
 use super::fastmath;
 use super::float::Real;
 use super::par::Par;
+use super::rows;
 use super::stats;
 use ndarray::{s, ArrayView1, ArrayView2, ArrayViewMut2, Axis, Zip};
 
@@ -65,6 +66,12 @@ impl<'a, F: Real> Steps<'a, F> {
         check_finite: bool,
         par: Par,
     ) -> CoreResult<()> {
+        self.validate_layout(need_values)?;
+        self.validate_data(need_values, check_finite, par)
+    }
+
+    /// The checks that do not read the per-step data.
+    fn validate_layout(&self, need_values: bool) -> CoreResult<()> {
         let shape = self.rewards.shape();
         let same = |name: &'static str, s: Option<&[usize]>| -> CoreResult<()> {
             match s {
@@ -102,6 +109,11 @@ impl<'a, F: Real> Steps<'a, F> {
                 ));
             }
         }
+        Ok(())
+    }
+
+    /// The checks that read the data: truncation rule, then finiteness.
+    fn validate_data(&self, need_values: bool, check_finite: bool, par: Par) -> CoreResult<()> {
         if let (Some(tr), None) = (&self.truncated, &self.next_values) {
             if let Some((t, m)) = first_true(tr, par) {
                 return Err(CoreError::input_at(
@@ -196,10 +208,22 @@ pub fn discounted_returns<F: Real>(
     steps: &Steps<'_, F>,
     gamma: f64,
     check_finite: bool,
-    out: ArrayViewMut2<'_, F>,
+    mut out: ArrayViewMut2<'_, F>,
     par: Par,
 ) -> CoreResult<()> {
     check_unit("gamma", gamma)?;
+    if let Some(()) = direct(steps, false, check_finite, par, |s| {
+        check_out("out", out.shape(), s.rewards.shape())?;
+        Ok(rows::try_run(
+            s,
+            rows::Rule::Returns { gamma },
+            out.view_mut(),
+            None,
+            par,
+        ))
+    })? {
+        return Ok(());
+    }
     steps.validate(false, check_finite, par)?;
     check_out("out", out.shape(), steps.rewards.shape())?;
     run(
@@ -232,14 +256,11 @@ pub fn gae<F: Real>(
     normalize: Option<f64>,
     check_finite: bool,
     mut adv: ArrayViewMut2<'_, F>,
-    ret: ArrayViewMut2<'_, F>,
+    mut ret: ArrayViewMut2<'_, F>,
     par: Par,
 ) -> CoreResult<()> {
     check_unit("gamma", gamma)?;
     check_unit("lam", lam)?;
-    steps.validate(true, check_finite, par)?;
-    check_out("out[0]", adv.shape(), steps.rewards.shape())?;
-    check_out("out[1]", ret.shape(), steps.rewards.shape())?;
     if let Some(eps) = normalize {
         if !(eps.is_finite() && eps >= 0.0) {
             return Err(CoreError::input(
@@ -248,19 +269,72 @@ pub fn gae<F: Real>(
             ));
         }
     }
-    run(
-        steps,
-        &[],
-        &GaeRule { gamma, lam },
-        (Store::Y, Some(Store::YPlusV)),
-        adv.view_mut(),
-        Some(ret),
-        par,
-    );
+    let done = direct(steps, true, check_finite, par, |s| {
+        check_out("out[0]", adv.shape(), s.rewards.shape())?;
+        check_out("out[1]", ret.shape(), s.rewards.shape())?;
+        Ok(rows::try_run(
+            s,
+            rows::Rule::Gae { gamma, lam },
+            adv.view_mut(),
+            Some(ret.view_mut()),
+            par,
+        ))
+    })?;
+    if done.is_none() {
+        steps.validate(true, check_finite, par)?;
+        check_out("out[0]", adv.shape(), steps.rewards.shape())?;
+        check_out("out[1]", ret.shape(), steps.rewards.shape())?;
+        run(
+            steps,
+            &[],
+            &GaeRule { gamma, lam },
+            (Store::Y, Some(Store::YPlusV)),
+            adv.view_mut(),
+            Some(ret),
+            par,
+        );
+    }
     if let Some(eps) = normalize {
         stats::normalize_inplace(&mut adv, None, eps, 0, par)?;
     }
     Ok(())
+}
+
+/// The fast path of [`rows`] when the layout allows: the layout checks, the
+/// cheap data checks, then `kernel`; the full validation runs only when the
+/// kernel saw something it must explain. `Ok(None)`: not taken (nothing was
+/// written), run the general loop.
+fn direct<F: Real>(
+    steps: &Steps<'_, F>,
+    need_values: bool,
+    check_finite: bool,
+    par: Par,
+    kernel: impl FnOnce(&Steps<'_, F>) -> CoreResult<Option<rows::Flags>>,
+) -> CoreResult<Option<()>> {
+    steps.validate_layout(need_values)?;
+    if check_finite {
+        // next_values and bootstrap do not always reach an output (a
+        // terminated step ignores them), so they are checked up front; on a
+        // failure the full validation reports the first error in its order.
+        let nv_bad = steps
+            .next_values
+            .as_ref()
+            .is_some_and(|v| first_non_finite_2d(v, par).is_some());
+        let boot_bad = steps
+            .bootstrap
+            .as_ref()
+            .is_some_and(|b| b.iter().any(|x| !x.finite()));
+        if nv_bad || boot_bad {
+            steps.validate_data(need_values, check_finite, par)?;
+        }
+    }
+    let Some(flags) = kernel(steps)? else {
+        return Ok(None);
+    };
+    if flags.truncated_without_next || (check_finite && flags.non_finite) {
+        steps.validate_data(need_values, check_finite, par)?;
+    }
+    Ok(Some(()))
 }
 
 pub(crate) fn check_out(name: &'static str, got: &[usize], want: &[usize]) -> CoreResult<()> {
@@ -380,7 +454,7 @@ pub(crate) fn run<F: Real, R: StepRule>(
 }
 
 /// Cut a `[T, M]` view into column blocks of width `w` (the last may be narrower).
-fn split_cols<F>(mut v: ArrayViewMut2<'_, F>, w: usize) -> Vec<ArrayViewMut2<'_, F>> {
+pub(crate) fn split_cols<F>(mut v: ArrayViewMut2<'_, F>, w: usize) -> Vec<ArrayViewMut2<'_, F>> {
     let mut out = Vec::with_capacity(v.ncols().div_ceil(w.max(1)));
     while v.ncols() > w {
         let (a, b) = v.split_at(Axis(1), w);
@@ -810,6 +884,140 @@ mod tests {
                 assert!(gr.iter().zip(rg.iter()).all(|(x, y)| (x - y).abs() < 1e-12));
             }
         }
+    }
+
+    /// The contiguous fast path and the general tile loop (taken for a
+    /// Fortran-ordered copy of the same data) give the same bits, for both
+    /// kernels, every optional input, widths that are not a multiple of 8, and
+    /// 1 or N threads.
+    #[test]
+    fn fast_path_equals_tile_loop_bit_for_bit() {
+        for &(t, m) in &[(1usize, 1usize), (7, 5), (64, 8), (37, 19), (300, 333)] {
+            let r =
+                Array2::from_shape_fn((t, m), |(i, j)| ((i * 31 + j * 17) % 23) as f64 * 0.1 - 1.0);
+            let v = Array2::from_shape_fn((t, m), |(i, j)| ((i * 7 + j) % 11) as f64 * 0.2);
+            let nv = Array2::from_shape_fn((t, m), |(i, j)| ((i * 5 + j * 3) % 13) as f64 * 0.3);
+            let te = Array2::from_shape_fn((t, m), |(i, j)| (i * 13 + j * 5) % 7 == 0);
+            let tr = Array2::from_shape_fn((t, m), |(i, j)| (i * 3 + j * 11) % 5 == 0);
+            let boot = ndarray::Array1::from_shape_fn(m, |j| j as f64 * 0.5 - 1.0);
+            let fortran = |a: &Array2<f64>| {
+                let mut f = Array2::zeros(a.raw_dim().f());
+                f.assign(a);
+                f
+            };
+            let fortran_b = |a: &Array2<bool>| {
+                let mut f = Array2::from_elem(a.raw_dim().f(), false);
+                f.assign(a);
+                f
+            };
+            let (rf, vf, nvf, tef, trf) = (
+                fortran(&r),
+                fortran(&v),
+                fortran(&nv),
+                fortran_b(&te),
+                fortran_b(&tr),
+            );
+            for with_nv in [false, true] {
+                #[allow(clippy::type_complexity)]
+                fn make<'x>(
+                    (r, v, nv, te, tr): (
+                        &'x Array2<f64>,
+                        &'x Array2<f64>,
+                        &'x Array2<f64>,
+                        &'x Array2<bool>,
+                        &'x Array2<bool>,
+                    ),
+                    boot: &'x ndarray::Array1<f64>,
+                    with_nv: bool,
+                ) -> Steps<'x, f64> {
+                    Steps {
+                        values: Some(v.view()),
+                        next_values: if with_nv { Some(nv.view()) } else { None },
+                        terminated: Some(te.view()),
+                        truncated: if with_nv { Some(tr.view()) } else { None },
+                        bootstrap: if with_nv { None } else { Some(boot.view()) },
+                        ..Steps::new(r.view())
+                    }
+                }
+                let c = make((&r, &v, &nv, &te, &tr), &boot, with_nv);
+                let f = make((&rf, &vf, &nvf, &tef, &trf), &boot, with_nv);
+                for par in [Par::Seq, Par::Rayon] {
+                    let mut ac = Array2::zeros((t, m));
+                    let mut bc = Array2::zeros((t, m));
+                    let mut af = Array2::zeros((t, m).f());
+                    let mut bf = Array2::zeros((t, m).f());
+                    gae(&c, 0.97, 0.9, None, true, ac.view_mut(), bc.view_mut(), par).unwrap();
+                    gae(&f, 0.97, 0.9, None, true, af.view_mut(), bf.view_mut(), par).unwrap();
+                    assert_eq!(ac, af, "gae adv t={t} m={m} nv={with_nv}");
+                    assert_eq!(bc, bf, "gae ret t={t} m={m} nv={with_nv}");
+                    discounted_returns(&c, 0.97, true, ac.view_mut(), par).unwrap();
+                    discounted_returns(&f, 0.97, true, af.view_mut(), par).unwrap();
+                    assert_eq!(ac, af, "returns t={t} m={m} nv={with_nv}");
+                }
+            }
+        }
+    }
+
+    /// The fast path finds a bad value after the fact, with the same error
+    /// as the up-front checks of the general loop.
+    #[test]
+    fn fast_path_reports_the_first_bad_value() {
+        let mut r = Array2::from_elem((50, 12), 0.5f32);
+        let mut v = Array2::from_elem((50, 12), 0.25f32);
+        r[[30, 11]] = f32::NAN;
+        v[[40, 2]] = f32::INFINITY;
+        let mut a = Array2::zeros((50, 12));
+        let mut b = Array2::zeros((50, 12));
+        let steps = Steps {
+            values: Some(v.view()),
+            ..Steps::new(r.view())
+        };
+        let e = gae(
+            &steps,
+            0.9,
+            0.9,
+            None,
+            true,
+            a.view_mut(),
+            b.view_mut(),
+            Par::Seq,
+        )
+        .unwrap_err();
+        assert_eq!(e, CoreError::non_finite("rewards", At::TimeStream(30, 11)));
+        r[[30, 11]] = 0.0;
+        let steps = Steps {
+            values: Some(v.view()),
+            ..Steps::new(r.view())
+        };
+        let e = gae(
+            &steps,
+            0.9,
+            0.9,
+            None,
+            true,
+            a.view_mut(),
+            b.view_mut(),
+            Par::Seq,
+        )
+        .unwrap_err();
+        assert_eq!(e, CoreError::non_finite("values", At::TimeStream(40, 2)));
+        // a truncation without next values, even with check_finite=False
+        let tr = Array2::from_shape_fn((50, 12), |(i, j)| i == 9 && j == 4);
+        let steps = Steps {
+            truncated: Some(tr.view()),
+            ..Steps::new(r.view())
+        };
+        let e = discounted_returns(&steps, 0.9, false, a.view_mut(), Par::Seq).unwrap_err();
+        assert!(
+            matches!(
+                e,
+                CoreError::Input {
+                    arg: "truncated",
+                    ..
+                }
+            ),
+            "{e:?}"
+        );
     }
 
     #[test]
