@@ -3,8 +3,8 @@
 //!
 //! The general tile loop gathers every input into `f64` scratch and scatters
 //! the results back, with per-row bookkeeping that dominates when `M` is
-//! small. Here each row is read once from the caller's arrays, 8 streams at a
-//! time in [`F64x8`] lanes, and written once; the carries (`A_{t+1}` or
+//! small. Here each row is read once from the caller's arrays in one
+//! vectorised loop (one copy per rule and flag presence) and written once; the carries (`A_{t+1}` or
 //! `G_{t+1}`, one per stream) stay in a small `f64` buffer. The arithmetic
 //! (same operations in the same order, no fused multiply-adds) and the
 //! bootstrap rule are those of the tile loop (see the module docs of
@@ -18,10 +18,11 @@
 
 use super::float::Real;
 use super::par::{Par, PAR_MIN_WORK};
-use super::simd::{dispatch, finite_mark, F64x8, Kernel};
+use super::simd::{dispatch, Kernel};
 use super::timemajor::{split_cols, Steps};
 use ndarray::{ArrayViewMut2, Axis};
 
+/// Streams per block are a multiple of this (a full vector of f64 lanes).
 const L: usize = 8;
 
 /// The inputs as flat row-major slices (`[t * M + m]`).
@@ -117,14 +118,27 @@ pub(crate) fn try_run<F: Real>(
         .enumerate()
         .map(|(i, (a, b))| (i * w, a, b))
         .collect();
+    let (te, tr) = (flat.te.is_some(), flat.tr.is_some());
     let flags = par.map(items, |(m0, a, b)| {
-        dispatch(BlockJob {
+        let job = BlockJob {
             flat: &flat,
             rule,
             m0,
             a,
             b,
-        })
+        };
+        // One copy of the loop per rule and flag presence: no per-lane
+        // branches on what the call passed.
+        match (rule, te, tr) {
+            (Rule::Returns { .. }, false, false) => dispatch(Spec::<_, false, false, false>(job)),
+            (Rule::Returns { .. }, true, false) => dispatch(Spec::<_, false, true, false>(job)),
+            (Rule::Returns { .. }, false, true) => dispatch(Spec::<_, false, false, true>(job)),
+            (Rule::Returns { .. }, true, true) => dispatch(Spec::<_, false, true, true>(job)),
+            (Rule::Gae { .. }, false, false) => dispatch(Spec::<_, true, false, false>(job)),
+            (Rule::Gae { .. }, true, false) => dispatch(Spec::<_, true, true, false>(job)),
+            (Rule::Gae { .. }, false, true) => dispatch(Spec::<_, true, false, true>(job)),
+            (Rule::Gae { .. }, true, true) => dispatch(Spec::<_, true, true, true>(job)),
+        }
     });
     Some(flags.into_iter().fold(Flags::default(), |x, y| Flags {
         non_finite: x.non_finite | y.non_finite,
@@ -141,83 +155,72 @@ struct BlockJob<'j, 's, 'o, F> {
     b: Option<ArrayViewMut2<'o, F>>,
 }
 
+/// A [`BlockJob`] with the rule (`GAE`) and the presence of the terminated
+/// (`TE`) and truncated (`TR`) flags fixed at compile time.
+struct Spec<'j, 's, 'o, F, const GAE: bool, const TE: bool, const TR: bool>(
+    BlockJob<'j, 's, 'o, F>,
+);
+
+/// The inputs of one row of a block (all of its width).
+struct RowIn<'s, F> {
+    r: &'s [F],
+    v: &'s [F],
+    vn: &'s [F],
+    te: &'s [bool],
+    tr: &'s [bool],
+    last: bool,
+}
+
+/// One row: `y` into `oa` (and `y + v` into `ob` for GAE), carries updated,
+/// exactly as the tile loop's rules compute them. A plain loop over the row
+/// (the loop vectoriser handles it reliably; absent inputs are compile-time
+/// constants). Returns `(some output not finite, some step truncated)`.
 #[inline(always)]
-fn load<F: Real>(s: &[F], i: usize) -> F64x8 {
-    let s = &s[i..i + L];
-    let mut x = [0.0; L];
-    for (x, v) in x.iter_mut().zip(s) {
-        *x = v.to_f64();
-    }
-    F64x8(x)
-}
-
-/// Eight flags from `s` at `i` (all false when the array is absent).
-#[inline(always)]
-fn flags8(s: &[bool], i: usize) -> [bool; L] {
-    let mut f = [false; L];
-    if !s.is_empty() {
-        f.copy_from_slice(&s[i..i + L]);
-    }
-    f
-}
-
-#[inline(always)]
-fn store<F: Real>(d: &mut [F], i: usize, y: F64x8) {
-    for (o, &y) in d[i..i + L].iter_mut().zip(&y.0) {
-        *o = F::from_f64(y);
-    }
-}
-
-/// Which inputs exist (fixed for a call, so the branches are predictable).
-#[derive(Clone, Copy)]
-struct Has {
-    v: bool,
-    nv: bool,
-    boot: bool,
-}
-
-/// Inputs of one group of 8 streams at one row.
-struct Group {
-    r: F64x8,
-    v: F64x8,
-    vn: F64x8,
-    te: [bool; L],
-    tr: [bool; L],
-}
-
-/// One group's outputs `(y, y + v)` from its inputs and carries.
-#[inline(always)]
-fn step(rule: Rule, g: &Group, cy: &F64x8, last: bool) -> (F64x8, F64x8) {
-    let mut y = [0.0; L];
-    match rule {
-        Rule::Returns { gamma } => {
-            for (j, y) in y.iter_mut().enumerate() {
-                // the value a cut step (or the last row) bootstraps from
-                let xv = if g.tr[j] || last { g.vn.0[j] } else { cy.0[j] };
-                *y = g.r.0[j] + gamma * keep1(xv, !g.te[j]);
-            }
-            (F64x8(y), F64x8(y))
-        }
-        Rule::Gae { gamma, lam } => {
-            let gl = gamma * lam;
-            let mut yv = [0.0; L];
-            for j in 0..L {
-                let d = g.r.0[j] + gamma * keep1(g.vn.0[j], !g.te[j]) - g.v.0[j];
-                y[j] = d + keep1(gl * cy.0[j], !(g.te[j] || g.tr[j]));
-                yv[j] = y[j] + g.v.0[j];
-            }
-            (F64x8(y), F64x8(yv))
+fn row<F: Real, const GAE: bool, const TE: bool, const TR: bool>(
+    gamma: f64,
+    gl: f64,
+    x: &RowIn<'_, F>,
+    carry: &mut [f64],
+    oa: &mut [F],
+    ob: &mut [F],
+) -> (bool, bool) {
+    let w = carry.len();
+    let (r, v, vn) = (&x.r[..w], &x.v[..if GAE { w } else { 0 }], &x.vn[..w]);
+    let te = &x.te[..if TE { w } else { 0 }];
+    let tr = &x.tr[..if TR { w } else { 0 }];
+    let oa = &mut oa[..w];
+    let ob = &mut ob[..if GAE { w } else { 0 }];
+    let (mut bad, mut any_tr) = (false, false);
+    for j in 0..w {
+        let te_j = TE && te[j];
+        let tr_j = TR && tr[j];
+        any_tr |= tr_j;
+        if GAE {
+            let kv = if te_j { 0.0 } else { vn[j].to_f64() };
+            let vj = v[j].to_f64();
+            let d = r[j].to_f64() + gamma * kv - vj;
+            let gc = gl * carry[j];
+            let a = d + if te_j || tr_j { 0.0 } else { gc };
+            let rv = a + vj;
+            carry[j] = a;
+            bad |= !(a.is_finite() && rv.is_finite());
+            oa[j] = F::from_f64(a);
+            ob[j] = F::from_f64(rv);
+        } else {
+            let xv = if tr_j || x.last { vn[j].to_f64() } else { carry[j] };
+            let kx = if te_j { 0.0 } else { xv };
+            let g = r[j].to_f64() + gamma * kx;
+            carry[j] = g;
+            bad |= !g.is_finite();
+            oa[j] = F::from_f64(g);
         }
     }
+    (bad, any_tr)
 }
 
-/// `x` where `keep`, `+0.0` elsewhere (a select: `0 * NaN` never appears).
-#[inline(always)]
-fn keep1(x: f64, keep: bool) -> f64 {
-    f64::from_bits(x.to_bits() & (keep as u64).wrapping_neg())
-}
-
-impl<F: Real> Kernel for BlockJob<'_, '_, '_, F> {
+impl<F: Real, const GAE: bool, const TE: bool, const TR: bool> Kernel
+    for Spec<'_, '_, '_, F, GAE, TE, TR>
+{
     type Output = Flags;
 
     #[inline(always)]
@@ -229,14 +232,13 @@ impl<F: Real> Kernel for BlockJob<'_, '_, '_, F> {
             m0,
             mut a,
             mut b,
-        } = self;
+        } = self.0;
+        let (gamma, gl) = match rule {
+            Rule::Returns { gamma } => (gamma, 0.0),
+            Rule::Gae { gamma, lam } => (gamma, gamma * lam),
+        };
         let (m, t_len) = (flat.m, flat.t);
         let w = a.ncols();
-        let has = Has {
-            v: flat.v.is_some(),
-            nv: flat.nv.is_some(),
-            boot: flat.boot.is_some(),
-        };
         let empty: &[F] = &[];
         let no_flags: &[bool] = &[];
         let (vs, nvs, boot) = (
@@ -245,108 +247,51 @@ impl<F: Real> Kernel for BlockJob<'_, '_, '_, F> {
             flat.boot.unwrap_or(empty),
         );
         let (tes, trs) = (flat.te.unwrap_or(no_flags), flat.tr.unwrap_or(no_flags));
-        let full = w / L;
-        let rest = w % L;
-        let mut carry = vec![F64x8::splat(0.0); w.div_ceil(L)];
-        let mut poison = F64x8::splat(0.0);
-        let mut any_tr = false;
+        // Zero bootstraps when none is given.
+        let zero_boot: Vec<F> = if boot.is_empty() && nvs.is_empty() {
+            vec![F::from_f64(0.0); w]
+        } else {
+            Vec::new()
+        };
+        let mut carry = vec![0.0f64; w];
+        let mut flags = Flags::default();
         let mut rows_a = a.axis_iter_mut(Axis(0));
         let mut rows_b = b.as_mut().map(|b| b.axis_iter_mut(Axis(0)));
+        let mut none: [F; 0] = [];
         for t in (0..t_len).rev() {
             let Some(mut ra) = rows_a.next_back() else {
                 break;
             };
             let mut rb = rows_b.as_mut().and_then(|r| r.next_back());
             let Some(oa) = ra.as_slice_mut() else { break };
-            let mut ob = rb.as_mut().and_then(|r| r.as_slice_mut());
-            let last = t + 1 == t_len;
-            let row = t * m + m0;
-            // The value after step t: next_values, the next row, or the bootstrap.
-            let (below, below_at) = if has.nv {
-                (nvs, row)
-            } else if has.v && !last {
-                (vs, row + m)
-            } else if has.boot {
-                (boot, m0)
-            } else {
-                (empty, 0)
+            let ob: &mut [F] = match rb.as_mut().and_then(|r| r.as_slice_mut()) {
+                Some(o) => o,
+                None => &mut none,
             };
-            for (gi, cy) in carry.iter_mut().enumerate().take(full) {
-                let i = row + gi * L;
-                let g = Group {
-                    r: load(flat.r, i),
-                    v: if has.v {
-                        load(vs, i)
-                    } else {
-                        F64x8::splat(0.0)
-                    },
-                    vn: if below.is_empty() {
-                        F64x8::splat(0.0)
-                    } else {
-                        load(below, below_at + gi * L)
-                    },
-                    te: flags8(tes, i),
-                    tr: flags8(trs, i),
-                };
-                if !has.nv {
-                    any_tr |= g.tr.iter().any(|&x| x);
-                }
-                let (y, yv) = step(rule, &g, cy, last);
-                *cy = y;
-                poison = poison + y.finite_marks();
-                store(oa, gi * L, y);
-                if let Some(ob) = ob.as_deref_mut() {
-                    poison = poison + yv.finite_marks();
-                    store(ob, gi * L, yv);
-                }
-            }
-            if rest > 0 {
-                // The last, partial group: padded to 8 lanes in scratch.
-                let (j0, i) = (full * L, row + full * L);
-                let pad = |src: &[F], at: usize| {
-                    let mut x = [0.0; L];
-                    if !src.is_empty() {
-                        for (x, s) in x.iter_mut().zip(&src[at..at + rest]) {
-                            *x = s.to_f64();
-                        }
-                    }
-                    F64x8(x)
-                };
-                let padf = |src: &[bool]| {
-                    let mut x = [false; L];
-                    if !src.is_empty() {
-                        x[..rest].copy_from_slice(&src[i..i + rest]);
-                    }
-                    x
-                };
-                let g = Group {
-                    r: pad(flat.r, i),
-                    v: pad(vs, i),
-                    vn: pad(below, below_at + j0),
-                    te: padf(tes),
-                    tr: padf(trs),
-                };
-                if !has.nv {
-                    any_tr |= g.tr.iter().any(|&x| x);
-                }
-                let cy = &mut carry[full];
-                let (y, yv) = step(rule, &g, cy, last);
-                *cy = y;
-                for j in 0..rest {
-                    poison.0[j] += finite_mark(y.0[j]);
-                    oa[j0 + j] = F::from_f64(y.0[j]);
-                }
-                if let Some(ob) = ob {
-                    for j in 0..rest {
-                        poison.0[j] += finite_mark(yv.0[j]);
-                        ob[j0 + j] = F::from_f64(yv.0[j]);
-                    }
-                }
-            }
+            let last = t + 1 == t_len;
+            let i = t * m + m0;
+            // The value after step t: next_values, the next row, or the bootstrap.
+            let vn: &[F] = if !nvs.is_empty() {
+                &nvs[i..i + w]
+            } else if GAE && !last {
+                &vs[i + m..i + m + w]
+            } else if !boot.is_empty() {
+                &boot[m0..m0 + w]
+            } else {
+                &zero_boot
+            };
+            let x = RowIn {
+                r: &flat.r[i..i + w],
+                v: if GAE { &vs[i..i + w] } else { empty },
+                vn,
+                te: if TE { &tes[i..i + w] } else { no_flags },
+                tr: if TR { &trs[i..i + w] } else { no_flags },
+                last,
+            };
+            let (bad, tr) = row::<F, GAE, TE, TR>(gamma, gl, &x, &mut carry, oa, ob);
+            flags.non_finite |= bad;
+            flags.truncated_without_next |= tr && nvs.is_empty();
         }
-        Flags {
-            non_finite: !poison.0.iter().all(|&p| p == 0.0),
-            truncated_without_next: any_tr,
-        }
+        flags
     }
 }
