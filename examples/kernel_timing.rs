@@ -34,7 +34,17 @@ fn main() {
         let mut a = Array2::zeros((t, m));
         let mut b = Array2::zeros((t, m));
         let g = time(|| {
-            gae(&steps, 0.99, 0.95, None, true, a.view_mut(), b.view_mut(), Par::Seq).unwrap()
+            gae(
+                &steps,
+                0.99,
+                0.95,
+                None,
+                true,
+                a.view_mut(),
+                b.view_mut(),
+                Par::Seq,
+            )
+            .unwrap()
         });
         let d = time(|| discounted_returns(&steps, 0.99, true, a.view_mut(), Par::Seq).unwrap());
         let n = (t * m) as f64;

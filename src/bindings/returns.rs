@@ -9,7 +9,7 @@ use super::threads::run;
 use crate::core::error::fmt_shape;
 use crate::core::timemajor::{self, Steps};
 use crate::core::{stats, CoreError, Real};
-use ndarray::{ArrayView2, ArrayViewD, ArrayViewMut2, ArrayViewMutD, IxDyn};
+use ndarray::{ArrayView2, ArrayViewD, ArrayViewMut2, ArrayViewMutD, Ix1, Ix2, IxDyn};
 use numpy::prelude::*;
 use numpy::{Element, PyArrayDyn, PyReadonlyArrayDyn};
 use pyo3::prelude::*;
@@ -184,6 +184,39 @@ impl<'py, F: Element + Real> Borrowed<'py, F> {
         })
     }
 
+    /// The inputs as `[T, N]` views when the call needs no layout planning:
+    /// time axis 0 and every per-step array 2-D and C-contiguous (the usual
+    /// trainer buffer), with a `[N]` bootstrap if any. Saves most of the
+    /// per-call cost of small buffers.
+    pub fn plain(&self, time_axis: usize) -> Option<Steps<'_, F>> {
+        fn two<'b, T: Element>(a: &'b PyReadonlyArrayDyn<'_, T>) -> Option<ArrayView2<'b, T>> {
+            let v = a.as_array().into_dimensionality::<Ix2>().ok()?;
+            v.is_standard_layout().then_some(v)
+        }
+        fn opt<'b, T: Element>(
+            a: Option<&'b PyReadonlyArrayDyn<'_, T>>,
+        ) -> Option<Option<ArrayView2<'b, T>>> {
+            match a {
+                None => Some(None),
+                Some(a) => two(a).map(Some),
+            }
+        }
+        if time_axis != 0 {
+            return None;
+        }
+        Some(Steps {
+            rewards: two(&self.r)?,
+            values: opt(self.v.as_ref())?,
+            next_values: opt(self.nv.as_ref())?,
+            terminated: opt(self.te.as_ref())?,
+            truncated: opt(self.tr.as_ref())?,
+            bootstrap: match &self.b {
+                None => None,
+                Some(b) => Some(b.as_array().into_dimensionality::<Ix1>().ok()?),
+            },
+        })
+    }
+
     /// Plan the fold over these inputs and the given output views.
     pub fn layout(&self, time_axis: usize, outs: &[ArrayViewD<'_, F>]) -> Layout {
         let mut l = Layout::new(self.r.shape(), time_axis);
@@ -230,6 +263,12 @@ impl<'py, F: Element + Real> Borrowed<'py, F> {
             })
             .collect())
     }
+}
+
+/// An output as a `[T, N]` view when it is 2-D and C-contiguous.
+fn plain_out<F>(o: ArrayViewMutD<'_, F>) -> Option<ArrayViewMut2<'_, F>> {
+    let v = o.into_dimensionality::<Ix2>().ok()?;
+    v.is_standard_layout().then_some(v)
 }
 
 fn fold_bug() -> PyErr {
@@ -395,11 +434,20 @@ fn returns_impl<'py, F: Element + Real + Default>(
     {
         let b = Borrowed::new(&a)?;
         let mut ow = out.try_readwrite().map_err(|e| overlap_err("out", e))?;
+        let work = shape.iter().product::<usize>();
+        if let (Some(steps), Some(mut o)) = (b.plain(a.time_axis), plain_out(ow.as_array_mut())) {
+            let l = Layout::new(&shape, 0);
+            let res = run(py, work, |par| {
+                timemajor::discounted_returns(&steps, gamma, check_finite, o.view_mut(), par)
+                    .map_err(|e| (0, e))
+            })?;
+            map_sub_err(&l, res)?;
+            return Ok(out.into_any());
+        }
         let l = b.layout(a.time_axis, &[ow.as_array_mut().view().into_dyn()]);
         let steps = b.steps(&l)?;
         let mut sink = Sink::new(&l, ow.as_array_mut());
         let mut views = sink.views(&l)?;
-        let work = shape.iter().product::<usize>();
         let res = run(py, work, |par| {
             for (j, (s, o)) in steps.iter().zip(views.iter_mut()).enumerate() {
                 timemajor::discounted_returns(s, gamma, check_finite, o.view_mut(), par)
@@ -523,28 +571,16 @@ fn gae_impl<'py, F: Element + Real + Default>(
         let b = Borrowed::new(&a)?;
         let mut aw = adv.try_readwrite().map_err(|e| overlap_err("out[0]", e))?;
         let mut rw = ret.try_readwrite().map_err(|e| overlap_err("out[1]", e))?;
-        let l = b.layout(
-            a.time_axis,
-            &[
-                aw.as_array_mut().view().into_dyn(),
-                rw.as_array_mut().view().into_dyn(),
-            ],
-        );
-        let steps = b.steps(&l)?;
-        let mut sa = Sink::new(&l, aw.as_array_mut());
-        let mut sr = Sink::new(&l, rw.as_array_mut());
-        let mut va = sa.views(&l)?;
-        let mut vr = sr.views(&l)?;
         let work = 2 * shape.iter().product::<usize>();
-        let res = run(py, work, |par| {
-            for (j, ((s, x), y)) in steps
-                .iter()
-                .zip(va.iter_mut())
-                .zip(vr.iter_mut())
-                .enumerate()
-            {
+        if let (Some(steps), Some(mut x), Some(mut y)) = (
+            b.plain(a.time_axis),
+            plain_out(aw.as_array_mut()),
+            plain_out(rw.as_array_mut()),
+        ) {
+            let l = Layout::new(&shape, 0);
+            let res = run(py, work, |par| {
                 timemajor::gae(
-                    s,
+                    &steps,
                     gamma,
                     lam,
                     None,
@@ -553,14 +589,48 @@ fn gae_impl<'py, F: Element + Real + Default>(
                     y.view_mut(),
                     par,
                 )
-                .map_err(|e| (j, e))?;
-            }
-            Ok(())
-        })?;
-        drop((va, vr));
-        map_sub_err(&l, res)?;
-        sa.finish(&l)?;
-        sr.finish(&l)?;
+                .map_err(|e| (0, e))
+            })?;
+            map_sub_err(&l, res)?;
+        } else {
+            let l = b.layout(
+                a.time_axis,
+                &[
+                    aw.as_array_mut().view().into_dyn(),
+                    rw.as_array_mut().view().into_dyn(),
+                ],
+            );
+            let steps = b.steps(&l)?;
+            let mut sa = Sink::new(&l, aw.as_array_mut());
+            let mut sr = Sink::new(&l, rw.as_array_mut());
+            let mut va = sa.views(&l)?;
+            let mut vr = sr.views(&l)?;
+            let res = run(py, work, |par| {
+                for (j, ((s, x), y)) in steps
+                    .iter()
+                    .zip(va.iter_mut())
+                    .zip(vr.iter_mut())
+                    .enumerate()
+                {
+                    timemajor::gae(
+                        s,
+                        gamma,
+                        lam,
+                        None,
+                        check_finite,
+                        x.view_mut(),
+                        y.view_mut(),
+                        par,
+                    )
+                    .map_err(|e| (j, e))?;
+                }
+                Ok(())
+            })?;
+            drop((va, vr));
+            map_sub_err(&l, res)?;
+            sa.finish(&l)?;
+            sr.finish(&l)?;
+        }
         if let Some(eps) = normalize {
             let mut av = aw.as_array_mut();
             run(py, shape.iter().product(), |par| {

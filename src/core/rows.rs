@@ -207,7 +207,11 @@ fn row<F: Real, const GAE: bool, const TE: bool, const TR: bool>(
             oa[j] = F::from_f64(a);
             ob[j] = F::from_f64(rv);
         } else {
-            let xv = if tr_j || x.last { vn[j].to_f64() } else { carry[j] };
+            let xv = if tr_j || x.last {
+                vn[j].to_f64()
+            } else {
+                carry[j]
+            };
             let kx = if te_j { 0.0 } else { xv };
             let g = r[j].to_f64() + gamma * kx;
             carry[j] = g;
