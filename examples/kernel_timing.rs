@@ -47,9 +47,28 @@ fn main() {
             .unwrap()
         });
         let d = time(|| discounted_returns(&steps, 0.99, true, a.view_mut(), Par::Seq).unwrap());
+        let pool = rayon::ThreadPoolBuilder::new()
+            .num_threads(2)
+            .build()
+            .unwrap();
+        let gp = pool.install(|| {
+            time(|| {
+                gae(
+                    &steps,
+                    0.99,
+                    0.95,
+                    None,
+                    true,
+                    a.view_mut(),
+                    b.view_mut(),
+                    Par::Rayon,
+                )
+                .unwrap()
+            })
+        });
         let n = (t * m) as f64;
         println!(
-            "({t}, {m}): gae {g:.2} us ({:.2} ns/elem), returns {d:.2} us ({:.2} ns/elem)",
+            "({t}, {m}): gae {g:.2} us ({:.2} ns/elem), 2 threads {gp:.2} us; returns {d:.2} us ({:.2} ns/elem)",
             g * 1e3 / n,
             d * 1e3 / n
         );

@@ -24,6 +24,8 @@ use ndarray::{ArrayViewMut2, Axis};
 
 /// Streams per block are a multiple of this (a full vector of f64 lanes).
 const L: usize = 8;
+/// The narrowest block of streams given to a thread of its own.
+const MIN_W: usize = 128;
 
 /// The inputs as flat row-major slices (`[t * M + m]`).
 struct Flat<'s, F> {
@@ -102,8 +104,13 @@ pub(crate) fn try_run<F: Real>(
     }
     // Column blocks of a multiple of 8 streams, one per thread when the work
     // is large enough; streams are independent, so the split changes no bit.
+    // Blocks narrower than MIN_W streams lose more to the threads sharing
+    // every row than they gain (measured: (2048, 64) is faster on one thread).
     let blocks = match par {
-        Par::Rayon if t * m >= PAR_MIN_WORK => rayon::current_num_threads().clamp(1, 64),
+        Par::Rayon if t * m >= PAR_MIN_WORK => rayon::current_num_threads()
+            .clamp(1, 64)
+            .min(m / MIN_W)
+            .max(1),
         _ => 1,
     };
     let w = m.div_ceil(blocks).next_multiple_of(L).min(m.max(1));
@@ -155,6 +162,44 @@ struct BlockJob<'j, 's, 'o, F> {
     b: Option<ArrayViewMut2<'o, F>>,
 }
 
+/// The rows of an output block as slices, bottom-up: by chunks of one
+/// contiguous slice when the block spans whole rows (cheapest), else row views.
+enum RowsMut<'a, F> {
+    Flat(std::iter::Rev<std::slice::ChunksExactMut<'a, F>>),
+    /// The rows of a column block, top to bottom (popped from the end).
+    Views(Vec<&'a mut [F]>),
+}
+
+impl<'a, F> RowsMut<'a, F> {
+    fn new(v: ArrayViewMut2<'a, F>) -> Self {
+        let w = v.ncols().max(1);
+        if v.is_standard_layout() {
+            // a standard-layout view is always one slice
+            let flat = v.into_slice().unwrap_or_default();
+            return RowsMut::Flat(flat.chunks_exact_mut(w).rev());
+        }
+        let mut rows = Vec::with_capacity(v.nrows());
+        let mut rest = v;
+        while rest.nrows() > 0 {
+            let (top, below) = rest.split_at(Axis(0), 1);
+            rest = below;
+            // one row of a column block with unit column stride is a slice
+            let Some(row) = top.into_slice() else { break };
+            rows.push(row);
+        }
+        RowsMut::Views(rows)
+    }
+
+    /// The next row from the bottom (`None` past the top, or for a row that
+    /// is not contiguous, which the caller has ruled out).
+    fn next_back(&mut self) -> Option<&'a mut [F]> {
+        match self {
+            RowsMut::Flat(it) => it.next(),
+            RowsMut::Views(rows) => rows.pop(),
+        }
+    }
+}
+
 /// A [`BlockJob`] with the rule (`GAE`) and the presence of the terminated
 /// (`TE`) and truncated (`TR`) flags fixed at compile time.
 struct Spec<'j, 's, 'o, F, const GAE: bool, const TE: bool, const TR: bool>(
@@ -175,8 +220,11 @@ struct RowIn<'s, F> {
 /// exactly as the tile loop's rules compute them. A plain loop over the row
 /// (the loop vectoriser handles it reliably; absent inputs are compile-time
 /// constants). Returns `(some output not finite, some step truncated)`.
+///
+/// `N > 0` fixes the width at compile time (for narrow buffers, where a
+/// runtime-length loop of 8 would run the scalar remainder path).
 #[inline(always)]
-fn row<F: Real, const GAE: bool, const TE: bool, const TR: bool>(
+fn row<F: Real, const GAE: bool, const TE: bool, const TR: bool, const N: usize>(
     gamma: f64,
     gl: f64,
     x: &RowIn<'_, F>,
@@ -184,7 +232,8 @@ fn row<F: Real, const GAE: bool, const TE: bool, const TR: bool>(
     oa: &mut [F],
     ob: &mut [F],
 ) -> (bool, bool) {
-    let w = carry.len();
+    let w = if N > 0 { N } else { carry.len() };
+    let carry = &mut carry[..w];
     let (r, v, vn) = (&x.r[..w], &x.v[..if GAE { w } else { 0 }], &x.vn[..w]);
     let te = &x.te[..if TE { w } else { 0 }];
     let tr = &x.tr[..if TR { w } else { 0 }];
@@ -259,16 +308,12 @@ impl<F: Real, const GAE: bool, const TE: bool, const TR: bool> Kernel
         };
         let mut carry = vec![0.0f64; w];
         let mut flags = Flags::default();
-        let mut rows_a = a.axis_iter_mut(Axis(0));
-        let mut rows_b = b.as_mut().map(|b| b.axis_iter_mut(Axis(0)));
+        let mut rows_a = RowsMut::new(a.view_mut());
+        let mut rows_b = b.as_mut().map(|b| RowsMut::new(b.view_mut()));
         let mut none: [F; 0] = [];
         for t in (0..t_len).rev() {
-            let Some(mut ra) = rows_a.next_back() else {
-                break;
-            };
-            let mut rb = rows_b.as_mut().and_then(|r| r.next_back());
-            let Some(oa) = ra.as_slice_mut() else { break };
-            let ob: &mut [F] = match rb.as_mut().and_then(|r| r.as_slice_mut()) {
+            let Some(oa) = rows_a.next_back() else { break };
+            let ob: &mut [F] = match rows_b.as_mut().and_then(|r| r.next_back()) {
                 Some(o) => o,
                 None => &mut none,
             };
@@ -292,7 +337,11 @@ impl<F: Real, const GAE: bool, const TE: bool, const TR: bool> Kernel
                 tr: if TR { &trs[i..i + w] } else { no_flags },
                 last,
             };
-            let (bad, tr) = row::<F, GAE, TE, TR>(gamma, gl, &x, &mut carry, oa, ob);
+            let (bad, tr) = if w == L {
+                row::<F, GAE, TE, TR, L>(gamma, gl, &x, &mut carry, oa, ob)
+            } else {
+                row::<F, GAE, TE, TR, 0>(gamma, gl, &x, &mut carry, oa, ob)
+            };
             flags.non_finite |= bad;
             flags.truncated_without_next |= tr && nvs.is_empty();
         }
