@@ -271,6 +271,69 @@ fn row<F: Real, const GAE: bool, const TE: bool, const TR: bool, const N: usize>
     (bad, any_tr)
 }
 
+/// What every row of a block reads.
+struct BlockIns<'s, F> {
+    m: usize,
+    m0: usize,
+    w: usize,
+    t_len: usize,
+    r: &'s [F],
+    vs: &'s [F],
+    nvs: &'s [F],
+    boot: &'s [F],
+    zero_boot: &'s [F],
+    tes: &'s [bool],
+    trs: &'s [bool],
+}
+
+/// All rows of a block, bottom-up (see [`row`] for `N`).
+#[inline(always)]
+fn rows_loop<F: Real, const GAE: bool, const TE: bool, const TR: bool, const N: usize>(
+    gamma: f64,
+    gl: f64,
+    x: &BlockIns<'_, F>,
+    carry: &mut [f64],
+    rows_a: &mut RowsMut<'_, F>,
+    rows_b: &mut Option<RowsMut<'_, F>>,
+) -> Flags {
+    let (m, m0, w) = (x.m, x.m0, x.w);
+    let mut flags = Flags::default();
+    let mut none: [F; 0] = [];
+    let no_v: &[F] = &[];
+    let no_flags: &[bool] = &[];
+    for t in (0..x.t_len).rev() {
+        let Some(oa) = rows_a.next_back() else { break };
+        let ob: &mut [F] = match rows_b.as_mut().and_then(|r| r.next_back()) {
+            Some(o) => o,
+            None => &mut none,
+        };
+        let last = t + 1 == x.t_len;
+        let i = t * m + m0;
+        // The value after step t: next_values, the next row, or the bootstrap.
+        let vn: &[F] = if !x.nvs.is_empty() {
+            &x.nvs[i..i + w]
+        } else if GAE && !last {
+            &x.vs[i + m..i + m + w]
+        } else if !x.boot.is_empty() {
+            &x.boot[m0..m0 + w]
+        } else {
+            x.zero_boot
+        };
+        let ri = RowIn {
+            r: &x.r[i..i + w],
+            v: if GAE { &x.vs[i..i + w] } else { no_v },
+            vn,
+            te: if TE { &x.tes[i..i + w] } else { no_flags },
+            tr: if TR { &x.trs[i..i + w] } else { no_flags },
+            last,
+        };
+        let (bad, tr) = row::<F, GAE, TE, TR, N>(gamma, gl, &ri, carry, oa, ob);
+        flags.non_finite |= bad;
+        flags.truncated_without_next |= tr && x.nvs.is_empty();
+    }
+    flags
+}
+
 impl<F: Real, const GAE: bool, const TE: bool, const TR: bool> Kernel
     for Spec<'_, '_, '_, F, GAE, TE, TR>
 {
@@ -306,45 +369,28 @@ impl<F: Real, const GAE: bool, const TE: bool, const TR: bool> Kernel
         } else {
             Vec::new()
         };
-        let mut carry = vec![0.0f64; w];
-        let mut flags = Flags::default();
         let mut rows_a = RowsMut::new(a.view_mut());
         let mut rows_b = b.as_mut().map(|b| RowsMut::new(b.view_mut()));
-        let mut none: [F; 0] = [];
-        for t in (0..t_len).rev() {
-            let Some(oa) = rows_a.next_back() else { break };
-            let ob: &mut [F] = match rows_b.as_mut().and_then(|r| r.next_back()) {
-                Some(o) => o,
-                None => &mut none,
-            };
-            let last = t + 1 == t_len;
-            let i = t * m + m0;
-            // The value after step t: next_values, the next row, or the bootstrap.
-            let vn: &[F] = if !nvs.is_empty() {
-                &nvs[i..i + w]
-            } else if GAE && !last {
-                &vs[i + m..i + m + w]
-            } else if !boot.is_empty() {
-                &boot[m0..m0 + w]
-            } else {
-                &zero_boot
-            };
-            let x = RowIn {
-                r: &flat.r[i..i + w],
-                v: if GAE { &vs[i..i + w] } else { empty },
-                vn,
-                te: if TE { &tes[i..i + w] } else { no_flags },
-                tr: if TR { &trs[i..i + w] } else { no_flags },
-                last,
-            };
-            let (bad, tr) = if w == L {
-                row::<F, GAE, TE, TR, L>(gamma, gl, &x, &mut carry, oa, ob)
-            } else {
-                row::<F, GAE, TE, TR, 0>(gamma, gl, &x, &mut carry, oa, ob)
-            };
-            flags.non_finite |= bad;
-            flags.truncated_without_next |= tr && nvs.is_empty();
+        let ins = BlockIns {
+            m,
+            m0,
+            w,
+            t_len,
+            r: flat.r,
+            vs,
+            nvs,
+            boot,
+            zero_boot: &zero_boot,
+            tes,
+            trs,
+        };
+        if w == L {
+            // 8 streams: the carries stay in registers from row to row.
+            let mut carry = [0.0f64; L];
+            rows_loop::<F, GAE, TE, TR, L>(gamma, gl, &ins, &mut carry, &mut rows_a, &mut rows_b)
+        } else {
+            let mut carry = vec![0.0f64; w];
+            rows_loop::<F, GAE, TE, TR, 0>(gamma, gl, &ins, &mut carry, &mut rows_a, &mut rows_b)
         }
-        flags
     }
 }
