@@ -36,7 +36,7 @@ import numpy as np
 from . import carries as cr
 from .errors import StoredError
 from .io import ColumnInfo
-from .process import Moments, chunk_moments, get_kernels
+from .process import Moments, check_options, chunk_moments, get_kernels, run_params
 from .schema import Dataset, Names, chunk_data, describe_shard
 
 
@@ -289,12 +289,7 @@ def process_collection(
     except ImportError:
         raise StoredError("process_collection needs dask: pip install 'rollscan[dask]'") from None
     names = names or Names()
-    if not 0.0 <= gamma <= 1.0:
-        raise StoredError(f"gamma must be in [0, 1], got {gamma}")
-    if lam is not None and not 0.0 <= lam <= 1.0:
-        raise StoredError(f"lam must be in [0, 1], got {lam}")
-    if chunk_steps < 1:
-        raise StoredError(f"chunk_steps must be >= 1, got {chunk_steps}")
+    check_options(gamma, lam, chunk_steps, flags=False)
     get_kernels(kernels)
 
     frame = _as_frame(data)
@@ -322,15 +317,7 @@ def process_collection(
         raise StoredError(
             f"data must be a dask DataFrame or a mapping of dask arrays, got {type(data).__name__}"
         )
-    if ds.has_value and lam is None:
-        raise StoredError("the data has a value column, so GAE needs lam", column=names["value"])
-    if not ds.has_value:
-        if normalize:
-            raise StoredError(
-                "normalize needs advantages, i.e. a value column", column=names["value"]
-            )
-        lam = None
-    params = cr.Params(gamma=float(gamma), lam=None if lam is None else float(lam))
+    params = run_params(ds, gamma, lam, normalize, flags=False)
 
     # pass 1: small summaries only
     task = dask.delayed(summarise_part, pure=True)

@@ -216,17 +216,43 @@ class Plan:
     fmt: str
 
 
+def _opt(name: str, flags: bool) -> str:
+    return "--" + name.replace("_", "-") if flags else name
+
+
+def check_options(gamma, lam, chunk_steps, *, flags=True):
+    """Refuse parameters outside their range (named as options, or as arguments)."""
+    if not 0.0 <= gamma <= 1.0:
+        raise StoredError(f"{_opt('gamma', flags)} must be in [0, 1], got {gamma}")
+    if lam is not None and not 0.0 <= lam <= 1.0:
+        raise StoredError(f"{_opt('lam', flags)} must be in [0, 1], got {lam}")
+    if chunk_steps < 1:
+        raise StoredError(f"{_opt('chunk_steps', flags)} must be >= 1, got {chunk_steps}")
+
+
+def run_params(ds: Dataset, gamma, lam, normalize, *, flags=True) -> cr.Params:
+    """The recurrence a data set gets: GAE with a value column, else returns only."""
+    if ds.has_value and lam is None:
+        raise StoredError(
+            f"the data has a value column, so GAE needs {_opt('lam', flags)}",
+            column=ds.names["value"],
+        )
+    if not ds.has_value:
+        if normalize:
+            raise StoredError(
+                f"{_opt('normalize', flags)} needs advantages, i.e. a value column",
+                column=ds.names["value"],
+            )
+        lam = None
+    return cr.Params(gamma=float(gamma), lam=None if lam is None else float(lam))
+
+
 def plan_run(paths, out_dir, *, gamma, lam, normalize, chunk_steps, names: Names) -> Plan:
     """Check the options and every shard's headers; name the outputs (nothing is written).
 
     Shared by every engine, so they refuse the same inputs with the same messages.
     """
-    if not 0.0 <= gamma <= 1.0:
-        raise StoredError(f"--gamma must be in [0, 1], got {gamma}")
-    if lam is not None and not 0.0 <= lam <= 1.0:
-        raise StoredError(f"--lam must be in [0, 1], got {lam}")
-    if chunk_steps < 1:
-        raise StoredError(f"--chunk-steps must be >= 1, got {chunk_steps}")
+    check_options(gamma, lam, chunk_steps)
     paths = [str(p) for p in paths]
     shards = [open_shard(p) for p in paths]
     try:
@@ -234,15 +260,7 @@ def plan_run(paths, out_dir, *, gamma, lam, normalize, chunk_steps, names: Names
     finally:
         for s in shards:
             s.close()
-    if ds.has_value and lam is None:
-        raise StoredError("the data has a value column, so GAE needs --lam", column=names["value"])
-    if not ds.has_value:
-        if normalize:
-            raise StoredError(
-                "--normalize needs advantages, i.e. a value column", column=names["value"]
-            )
-        lam = None
-    params = cr.Params(gamma=float(gamma), lam=None if lam is None else float(lam))
+    params = run_params(ds, gamma, lam, normalize)
 
     out_dir = os.path.abspath(out_dir)
     outputs = output_names(paths, out_dir)
