@@ -142,13 +142,6 @@ impl F64x8 {
         o[..8 - D].copy_from_slice(&self.0[D..]);
         F64x8(o)
     }
-
-    /// True when every lane is finite (no NaN, no infinity).
-    #[inline(always)]
-    pub fn all_finite(self) -> bool {
-        // NaN survives the sum of the marks.
-        self.finite_marks().0.iter().fold(0.0, |a, &b| a + b) == 0.0
-    }
 }
 
 impl std::ops::Add for F64x8 {
@@ -195,5 +188,20 @@ mod tests {
         assert!((got - want).abs() <= 1e-12 * want.abs());
         // the detection is stable
         assert_eq!(isa(), isa());
+    }
+
+    #[test]
+    fn lanes_shift_and_mark() {
+        let x = F64x8([1.0, 2.0, 3.0, 4.0, 5.0, 6.0, 7.0, 8.0]);
+        assert_eq!(x.shift::<1>().0, [2.0, 3.0, 4.0, 5.0, 6.0, 7.0, 8.0, 0.0]);
+        assert_eq!(x.shift::<4>().0, [5.0, 6.0, 7.0, 8.0, 0.0, 0.0, 0.0, 0.0]);
+        let y = F64x8([0.0, f64::INFINITY, -1.0, f64::NAN, 0.0, 0.0, 0.0, 1e308]);
+        let m = y.finite_marks().0;
+        assert!(m[1].is_nan() && m[3].is_nan());
+        assert!(m
+            .iter()
+            .enumerate()
+            .all(|(j, v)| j == 1 || j == 3 || *v == 0.0));
+        assert_eq!((x + x).0[7], 16.0);
     }
 }
