@@ -337,8 +337,16 @@ fn block_dispatch<F: Real>(
     block_kernel(nl, ol, ad, m, g, c)
 }
 
+/// Elements per pass of [`block_kernel`] (a multiple of [`LANES`]): its
+/// per-element terms stay in L1.
+const SUB: usize = 512;
+
 /// One block of contiguous elements (logical order): writes `g`, returns the
 /// block's sums. Element `i` goes to lane `i % LANES`.
+///
+/// Two plain loops per sub-block: one elementwise pass (the `exp`, the
+/// clipping, the gradient) into small `f64` arrays, which the loop vectoriser
+/// handles well, then the lane sums over those arrays.
 #[inline(always)]
 fn block_kernel<F: Real>(
     nl: &[F],
@@ -350,9 +358,6 @@ fn block_kernel<F: Real>(
 ) -> Partial {
     let n = g.len();
     let (nl, ol, ad) = (&nl[..n], &ol[..n], &ad[..n]);
-    // Groups of LANES independent elements (a fixed inner loop the compiler
-    // unrolls and vectorises), then the tail; element i always lands in
-    // lane i % LANES.
     let mut acc = Acc {
         obj: [0.0; LANES],
         kl: [0.0; LANES],
@@ -360,44 +365,64 @@ fn block_kernel<F: Real>(
         clipped: [0.0; LANES],
         rmax: [f64::NEG_INFINITY; LANES],
     };
-    let full = n / LANES * LANES;
-    let mut lr = [0.0f64; LANES];
-    let mut adv = [0.0f64; LANES];
-    let mut sel = [true; LANES];
-    let mut d = [0.0f64; LANES];
-    for base in (0..full).step_by(LANES) {
-        let (a, b, e) = (
-            &nl[base..base + LANES],
-            &ol[base..base + LANES],
-            &ad[base..base + LANES],
+    let mut obj = [0.0f64; SUB];
+    let mut kl = [0.0f64; SUB];
+    let mut rat = [0.0f64; SUB];
+    let mut cf = [0.0f64; SUB];
+    let mut rm = [0.0f64; SUB];
+    let mut s0 = 0;
+    while s0 < n {
+        let k = SUB.min(n - s0);
+        // Pad a short last pass to whole lanes with unselected elements.
+        let kp = k.next_multiple_of(LANES);
+        let (nl, ol, ad, g) = (
+            &nl[s0..s0 + k],
+            &ol[s0..s0 + k],
+            &ad[s0..s0 + k],
+            &mut g[s0..s0 + k],
         );
-        for l in 0..LANES {
-            lr[l] = a[l].to_f64() - b[l].to_f64();
-            adv[l] = e[l].to_f64();
+        let terms = |i: usize, sel: bool| {
+            let lr = nl[i].to_f64() - ol[i].to_f64();
+            let r = fastmath::exp(lr);
+            let e = element(lr, r, ad[i].to_f64(), sel, c);
+            (e, if sel { r } else { f64::NEG_INFINITY })
+        };
+        match m {
+            None => {
+                for i in 0..k {
+                    let ((d, o, l, r, f), x) = terms(i, true);
+                    g[i] = F::from_f64(d);
+                    (obj[i], kl[i], rat[i], cf[i], rm[i]) = (o, l, r, f, x);
+                }
+            }
+            Some(m) => {
+                let m = &m[s0..s0 + k];
+                for i in 0..k {
+                    let ((d, o, l, r, f), x) = terms(i, m[i]);
+                    g[i] = F::from_f64(d);
+                    (obj[i], kl[i], rat[i], cf[i], rm[i]) = (o, l, r, f, x);
+                }
+            }
         }
-        if let Some(m) = m {
-            sel.copy_from_slice(&m[base..base + LANES]);
+        for i in k..kp {
+            (obj[i], kl[i], rat[i], cf[i], rm[i]) = (0.0, 0.0, 0.0, 0.0, f64::NEG_INFINITY);
         }
-        group(&mut acc, &lr, &adv, &sel, &mut d, c);
-        for (o, &v) in g[base..base + LANES].iter_mut().zip(&d) {
-            *o = F::from_f64(v);
+        for j in (0..kp).step_by(LANES) {
+            for l in 0..LANES {
+                acc.obj[l] += obj[j + l];
+                acc.kl[l] += kl[j + l];
+                acc.ratio[l] += rat[j + l];
+                acc.clipped[l] += cf[j + l];
+                let x = rm[j + l];
+                // Sticky NaN: once a lane's max is NaN it stays NaN.
+                acc.rmax[l] = if x > acc.rmax[l] || x.is_nan() {
+                    x
+                } else {
+                    acc.rmax[l]
+                };
+            }
         }
-    }
-    if full < n {
-        // The tail, padded with unselected elements (which add nothing).
-        let len = n - full;
-        lr = [0.0; LANES];
-        adv = [0.0; LANES];
-        sel = [false; LANES];
-        for l in 0..len {
-            lr[l] = nl[full + l].to_f64() - ol[full + l].to_f64();
-            adv[l] = ad[full + l].to_f64();
-            sel[l] = m.is_none_or(|m| m[full + l]);
-        }
-        group(&mut acc, &lr, &adv, &sel, &mut d, c);
-        for l in 0..len {
-            g[full + l] = F::from_f64(d[l]);
-        }
+        s0 += k;
     }
     let mut p = Partial::ZERO;
     for l in 0..LANES {
@@ -419,38 +444,6 @@ struct Acc {
     ratio: [f64; LANES],
     clipped: [f64; LANES],
     rmax: [f64; LANES],
-}
-
-/// One group of [`LANES`] elements: fixed-size arrays, so the loops unroll and
-/// vectorise (and, being inlined, inherit the caller's target features).
-#[inline(always)]
-fn group(
-    acc: &mut Acc,
-    lr: &[f64; LANES],
-    adv: &[f64; LANES],
-    sel: &[bool; LANES],
-    d: &mut [f64; LANES],
-    c: &Consts,
-) {
-    let mut ratio_l = [0.0f64; LANES];
-    for l in 0..LANES {
-        ratio_l[l] = fastmath::exp(lr[l]);
-    }
-    for l in 0..LANES {
-        let (dl, o, k, r, cf) = element(lr[l], ratio_l[l], adv[l], sel[l], c);
-        d[l] = dl;
-        acc.obj[l] += o;
-        acc.kl[l] += k;
-        acc.ratio[l] += r;
-        acc.clipped[l] += cf;
-        let rm = if sel[l] { r } else { f64::NEG_INFINITY };
-        // Sticky NaN: once a lane's max is NaN it stays NaN.
-        acc.rmax[l] = if rm > acc.rmax[l] || rm.is_nan() {
-            rm
-        } else {
-            acc.rmax[l]
-        };
-    }
 }
 
 /// The first non-finite element in logical row-major order.
