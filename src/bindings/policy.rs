@@ -194,7 +194,12 @@ fn surrogate_impl<'py, F: Element + Real>(
         if g.ndim() == 0 {
             g.insert_axis_inplace(ndarray::Axis(0));
         }
-        let work = 4 * shape.iter().product::<usize>();
+        // One block: stay on this thread (waking the pool costs more).
+        let work = if policy::splits(vn.shape()) {
+            4 * shape.iter().product::<usize>()
+        } else {
+            0
+        };
         run(py, work, |par| {
             policy::clipped_surrogate(vn, vo, va, vm, clip, check_finite, g, par)
         })?

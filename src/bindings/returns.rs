@@ -265,6 +265,16 @@ impl<'py, F: Element + Real> Borrowed<'py, F> {
     }
 }
 
+/// The work to announce for a plain call: none (stay on this thread) when the
+/// fast path would not split the streams between threads anyway.
+fn plain_work<F>(steps: &Steps<'_, F>, work: usize) -> usize {
+    if crate::core::rows::splits_streams(steps.rewards.ncols()) {
+        work
+    } else {
+        0
+    }
+}
+
 /// An output as a `[T, N]` view when it is 2-D and C-contiguous.
 fn plain_out<F>(o: ArrayViewMutD<'_, F>) -> Option<ArrayViewMut2<'_, F>> {
     let v = o.into_dimensionality::<Ix2>().ok()?;
@@ -437,6 +447,7 @@ fn returns_impl<'py, F: Element + Real + Default>(
         let work = shape.iter().product::<usize>();
         if let (Some(steps), Some(mut o)) = (b.plain(a.time_axis), plain_out(ow.as_array_mut())) {
             let l = Layout::new(&shape, 0);
+            let work = plain_work(&steps, work);
             let res = run(py, work, |par| {
                 timemajor::discounted_returns(&steps, gamma, check_finite, o.view_mut(), par)
                     .map_err(|e| (0, e))
@@ -578,6 +589,7 @@ fn gae_impl<'py, F: Element + Real + Default>(
             plain_out(rw.as_array_mut()),
         ) {
             let l = Layout::new(&shape, 0);
+            let work = plain_work(&steps, work);
             let res = run(py, work, |par| {
                 timemajor::gae(
                     &steps,

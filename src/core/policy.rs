@@ -82,6 +82,12 @@ fn max_nan(a: f64, b: f64) -> f64 {
     }
 }
 
+/// Whether [`clipped_surrogate`] over `shape` has more than one block to
+/// share between threads (else entering the pool only costs time).
+pub fn splits(shape: &[usize]) -> bool {
+    row_blocks(shape).len() > 1
+}
+
 /// Cut `[len, ...]` views along axis 0 into blocks of about [`BLOCK`]
 /// elements. The boundaries depend on the shape only.
 fn row_blocks(shape: &[usize]) -> Vec<(usize, usize)> {

@@ -57,6 +57,12 @@ pub(crate) struct Flags {
     pub truncated_without_next: bool,
 }
 
+/// Whether the fast path would split `m` streams across threads at all: when
+/// not, the caller should not pay for entering the thread pool.
+pub fn splits_streams(m: usize) -> bool {
+    m >= 2 * MIN_W
+}
+
 /// Run `rule` over `steps` into `out_a` (and `out_b`: GAE returns) when every
 /// array is C-contiguous; `None` when the layout needs the general loop.
 pub(crate) fn try_run<F: Real>(
