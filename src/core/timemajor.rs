@@ -366,7 +366,9 @@ fn block_width(t: usize, m: usize, par: Par) -> usize {
     } else {
         1
     };
-    m.div_ceil(want_blocks).clamp(1, 256)
+    // At least 32 streams per block (all of them when fewer): narrower blocks
+    // spend more on per-row bookkeeping than the extra threads win.
+    m.div_ceil(want_blocks).clamp(32.min(m).max(1), 256)
 }
 
 /// The gathered inputs of one row of a block of `w` streams, in `f64`.
