@@ -18,7 +18,7 @@
 
 use super::float::Real;
 use super::par::{Par, PAR_MIN_WORK};
-use super::simd::{dispatch, Kernel};
+use super::simd::{dispatch, finite_mark, Kernel};
 use super::timemajor::{split_cols, Steps};
 use ndarray::{ArrayViewMut2, Axis};
 
@@ -277,6 +277,123 @@ fn row<F: Real, const GAE: bool, const TE: bool, const TR: bool, const N: usize>
     (bad, any_tr)
 }
 
+/// Eight lanes of `f64`, and eight lane masks (all ones or all zeros).
+type V8 = [f64; L];
+type M8 = [u64; L];
+
+#[inline(always)]
+fn ld8<F: Real>(s: &[F]) -> V8 {
+    let s = &s[..L];
+    let mut o = [0.0; L];
+    for (o, v) in o.iter_mut().zip(s) {
+        *o = v.to_f64();
+    }
+    o
+}
+
+#[inline(always)]
+fn mask8(s: &[bool]) -> M8 {
+    let s = &s[..L];
+    let mut o = [0u64; L];
+    for (o, &b) in o.iter_mut().zip(s) {
+        *o = (b as u64).wrapping_neg();
+    }
+    o
+}
+
+/// Lane-wise `f`; a loop of constant length that becomes one vector operation.
+#[inline(always)]
+fn lanes(f: impl Fn(usize) -> f64) -> V8 {
+    let mut o = [0.0; L];
+    for (j, v) in o.iter_mut().enumerate() {
+        *v = f(j);
+    }
+    o
+}
+
+/// `x` where the mask is clear, `+0.0` where set (`if m { 0.0 } else { x }`).
+#[inline(always)]
+fn zero_where(x: &V8, m: &M8) -> V8 {
+    lanes(|j| f64::from_bits(x[j].to_bits() & !m[j]))
+}
+
+#[inline(always)]
+fn st8<F: Real>(d: &mut [F], y: &V8) {
+    for (o, &y) in d[..L].iter_mut().zip(y) {
+        *o = F::from_f64(y);
+    }
+}
+
+/// The whole `[T, 8]` buffer, bottom-up, one vector step per operation of the
+/// rule and the carries held in a register: the same operations in the same
+/// order as [`row`], for the case where a row is only 8 streams wide (there
+/// the row loop of [`row`] would run its scalar remainder).
+#[inline(always)]
+fn narrow8<F: Real, const GAE: bool, const TE: bool, const TR: bool>(
+    gamma: f64,
+    gl: f64,
+    x: &BlockIns<'_, F>,
+    oa: &mut [F],
+    mut ob: Option<&mut [F]>,
+) -> Flags {
+    let none: M8 = [0; L];
+    let mut cy: V8 = [0.0; L];
+    let mut marks: V8 = [0.0; L];
+    let mut any_tr = false;
+    let zero = [F::from_f64(0.0); L];
+    for t in (0..x.t_len).rev() {
+        let i = t * L;
+        let last = t + 1 == x.t_len;
+        let vn_src: &[F] = if !x.nvs.is_empty() {
+            &x.nvs[i..]
+        } else if GAE && !last {
+            &x.vs[i + L..]
+        } else if !x.boot.is_empty() {
+            x.boot
+        } else {
+            &zero
+        };
+        let r = ld8(&x.r[i..]);
+        let vn = ld8(vn_src);
+        let te = if TE { mask8(&x.tes[i..]) } else { none };
+        let tr = if TR { mask8(&x.trs[i..]) } else { none };
+        if TR {
+            any_tr |= tr.iter().any(|&m| m != 0);
+        }
+        if GAE {
+            let v = ld8(&x.vs[i..]);
+            let kv = zero_where(&vn, &te);
+            let d = lanes(|j| r[j] + gamma * kv[j] - v[j]);
+            let mut end = [0u64; L];
+            for j in 0..L {
+                end[j] = te[j] | tr[j];
+            }
+            let gc = zero_where(&lanes(|j| gl * cy[j]), &end);
+            let a = lanes(|j| d[j] + gc[j]);
+            let rv = lanes(|j| a[j] + v[j]);
+            marks = lanes(|j| marks[j] + finite_mark(a[j]) + finite_mark(rv[j]));
+            st8(&mut oa[i..], &a);
+            if let Some(ob) = ob.as_deref_mut() {
+                st8(&mut ob[i..], &rv);
+            }
+            cy = a;
+        } else {
+            let cut = if last { [u64::MAX; L] } else { tr };
+            let xv =
+                lanes(|j| f64::from_bits((vn[j].to_bits() & cut[j]) | (cy[j].to_bits() & !cut[j])));
+            let kx = zero_where(&xv, &te);
+            let g = lanes(|j| r[j] + gamma * kx[j]);
+            marks = lanes(|j| marks[j] + finite_mark(g[j]));
+            st8(&mut oa[i..], &g);
+            cy = g;
+        }
+    }
+    Flags {
+        non_finite: marks.iter().fold(0.0, |s, &m| s + m) != 0.0,
+        truncated_without_next: any_tr && x.nvs.is_empty(),
+    }
+}
+
 /// What every row of a block reads.
 struct BlockIns<'s, F> {
     m: usize,
@@ -375,8 +492,6 @@ impl<F: Real, const GAE: bool, const TE: bool, const TR: bool> Kernel
         } else {
             Vec::new()
         };
-        let mut rows_a = RowsMut::new(a.view_mut());
-        let mut rows_b = b.as_mut().map(|b| RowsMut::new(b.view_mut()));
         let ins = BlockIns {
             m,
             m0,
@@ -390,8 +505,16 @@ impl<F: Real, const GAE: bool, const TE: bool, const TR: bool> Kernel
             tes,
             trs,
         };
+        if w == L && m == L {
+            // Exactly 8 streams: one vector per row, carries in a register.
+            if let Some(oa) = a.as_slice_mut() {
+                let ob = b.as_mut().and_then(|b| b.as_slice_mut());
+                return narrow8::<F, GAE, TE, TR>(gamma, gl, &ins, oa, ob);
+            }
+        }
+        let mut rows_a = RowsMut::new(a.view_mut());
+        let mut rows_b = b.as_mut().map(|b| RowsMut::new(b.view_mut()));
         if w == L {
-            // 8 streams: the carries stay in registers from row to row.
             let mut carry = [0.0f64; L];
             rows_loop::<F, GAE, TE, TR, L>(gamma, gl, &ins, &mut carry, &mut rows_a, &mut rows_b)
         } else {
