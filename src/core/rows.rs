@@ -226,11 +226,8 @@ struct RowIn<'s, F> {
 /// exactly as the tile loop's rules compute them. A plain loop over the row
 /// (the loop vectoriser handles it reliably; absent inputs are compile-time
 /// constants). Returns `(some output not finite, some step truncated)`.
-///
-/// `N > 0` fixes the width at compile time (for narrow buffers, where a
-/// runtime-length loop of 8 would run the scalar remainder path).
 #[inline(always)]
-fn row<F: Real, const GAE: bool, const TE: bool, const TR: bool, const N: usize>(
+fn row<F: Real, const GAE: bool, const TE: bool, const TR: bool>(
     gamma: f64,
     gl: f64,
     x: &RowIn<'_, F>,
@@ -238,8 +235,7 @@ fn row<F: Real, const GAE: bool, const TE: bool, const TR: bool, const N: usize>
     oa: &mut [F],
     ob: &mut [F],
 ) -> (bool, bool) {
-    let w = if N > 0 { N } else { carry.len() };
-    let carry = &mut carry[..w];
+    let w = carry.len();
     let (r, v, vn) = (&x.r[..w], &x.v[..if GAE { w } else { 0 }], &x.vn[..w]);
     let te = &x.te[..if TE { w } else { 0 }];
     let tr = &x.tr[..if TR { w } else { 0 }];
@@ -409,9 +405,9 @@ struct BlockIns<'s, F> {
     trs: &'s [bool],
 }
 
-/// All rows of a block, bottom-up (see [`row`] for `N`).
+/// All rows of a block, bottom-up.
 #[inline(always)]
-fn rows_loop<F: Real, const GAE: bool, const TE: bool, const TR: bool, const N: usize>(
+fn rows_loop<F: Real, const GAE: bool, const TE: bool, const TR: bool>(
     gamma: f64,
     gl: f64,
     x: &BlockIns<'_, F>,
@@ -450,7 +446,7 @@ fn rows_loop<F: Real, const GAE: bool, const TE: bool, const TR: bool, const N: 
             tr: if TR { &x.trs[i..i + w] } else { no_flags },
             last,
         };
-        let (bad, tr) = row::<F, GAE, TE, TR, N>(gamma, gl, &ri, carry, oa, ob);
+        let (bad, tr) = row::<F, GAE, TE, TR>(gamma, gl, &ri, carry, oa, ob);
         flags.non_finite |= bad;
         flags.truncated_without_next |= tr && x.nvs.is_empty();
     }
@@ -505,8 +501,9 @@ impl<F: Real, const GAE: bool, const TE: bool, const TR: bool> Kernel
             tes,
             trs,
         };
+        // Exactly 8 streams (then the block is the whole, contiguous buffer):
+        // one vector per row, carries in a register.
         if w == L && m == L {
-            // Exactly 8 streams: one vector per row, carries in a register.
             if let Some(oa) = a.as_slice_mut() {
                 let ob = b.as_mut().and_then(|b| b.as_slice_mut());
                 return narrow8::<F, GAE, TE, TR>(gamma, gl, &ins, oa, ob);
@@ -514,12 +511,7 @@ impl<F: Real, const GAE: bool, const TE: bool, const TR: bool> Kernel
         }
         let mut rows_a = RowsMut::new(a.view_mut());
         let mut rows_b = b.as_mut().map(|b| RowsMut::new(b.view_mut()));
-        if w == L {
-            let mut carry = [0.0f64; L];
-            rows_loop::<F, GAE, TE, TR, L>(gamma, gl, &ins, &mut carry, &mut rows_a, &mut rows_b)
-        } else {
-            let mut carry = vec![0.0f64; w];
-            rows_loop::<F, GAE, TE, TR, 0>(gamma, gl, &ins, &mut carry, &mut rows_a, &mut rows_b)
-        }
+        let mut carry = vec![0.0f64; w];
+        rows_loop::<F, GAE, TE, TR>(gamma, gl, &ins, &mut carry, &mut rows_a, &mut rows_b)
     }
 }
