@@ -35,3 +35,16 @@ def restore_threads():
     before = rollscan.get_num_threads()
     yield before
     rollscan.set_num_threads(before)
+
+
+@pytest.fixture(scope="session")
+def client():
+    """One local Dask cluster of 2 worker processes for every Dask test (started once)."""
+    distributed = pytest.importorskip("distributed")
+    cluster = distributed.LocalCluster(
+        n_workers=2, threads_per_worker=1, processes=True, dashboard_address=":0"
+    )
+    cl = distributed.Client(cluster, set_as_default=False)
+    yield cl
+    cl.close()
+    cluster.close()

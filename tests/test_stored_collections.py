@@ -32,17 +32,6 @@ CUTS = [ROWS * k for k in range(1, N_PARTS)]
 EP_COLS = ["episode", "stream", "shard", "first_row", "length", "ending"]
 
 
-@pytest.fixture(scope="module")
-def client():
-    cluster = distributed.LocalCluster(
-        n_workers=2, threads_per_worker=1, processes=True, dashboard_address=":0"
-    )
-    cl = distributed.Client(cluster, set_as_default=False)
-    yield cl
-    cl.close()
-    cluster.close()
-
-
 def data(layout, seed=0, float32=False, **kw):
     rng = np.random.default_rng(seed)
     d = make_data(rng, N_PARTS * ROWS, layout=layout, **kw)

@@ -39,17 +39,6 @@ ROWS_PER_SHARD = 23
 SPAN = (3, 8)  # no episode ends in shards 3..7: episodes cross 5 shard boundaries
 
 
-@pytest.fixture(scope="module")
-def client():
-    cluster = distributed.LocalCluster(
-        n_workers=2, threads_per_worker=1, processes=True, dashboard_address=":0"
-    )
-    cl = distributed.Client(cluster, set_as_default=False)
-    yield cl
-    cl.close()
-    cluster.close()
-
-
 def dataset(tmp, layout="streams", seed=0, fmt="npz", **kw):
     rng = np.random.default_rng(seed)
     n = N_SHARDS * ROWS_PER_SHARD
