@@ -11,17 +11,22 @@
 //! The steps are cut into fixed blocks of [`BLOCK`] steps, a boundary that
 //! depends only on `S`. Each block's result depends on the blocks after it
 //! only through the one piece that runs across its right edge, and the
-//! recurrence is affine, so:
-//! 1. every block scans its *head* segment (from its first step to the end of
+//! recurrence is affine, so, block by block from the last to the first:
+//! 1. the block scans its *head* segment (from its first step to the end of
 //!    the piece it starts in, or the block end) with zero carry, giving the
 //!    affine map `y_first = head + factor * carry` ([`Carry`]);
-//! 2. one cheap pass right to left turns the maps into each block's incoming
-//!    carry;
-//! 3. every block scans itself with its carry and writes its outputs.
+//! 2. as soon as the carry into the block is known, the map turns it into the
+//!    carry of the block on its left, which is passed on at once;
+//! 3. the block scans itself with its carry and writes its outputs.
 //!
-//! Only step 2 is serial, and it touches one number per block. A single very
-//! long episode is therefore split like any other data, and since the blocks
-//! are fixed, the result is bit-identical for any thread count.
+//! Only step 2 is serial, and it touches one number per block. The blocks run
+//! as one chain ([`Par::chain`]): a worker does steps 1 and 3 of a block back
+//! to back, so a block is read from memory once and re-read from cache (one
+//! very long episode moves as few bytes per step as many short ones). Workers
+//! claim blocks in order and wait only for the carry of a block claimed just
+//! before. A single long episode is split like any other data, and since the
+//! blocks are fixed and the carries combined in one fixed order, the result
+//! is bit-identical for any thread count.
 //!
 //! Inside a block every piece is a *run* with one constant coefficient
 //! (`gamma`, or `gamma * lam`), scanned 8 steps at a time by
@@ -40,6 +45,8 @@ use super::par::Par;
 use super::scan::{run, run_first, Carry, Run8, Sink, Terms, W};
 use super::simd::{dispatch, finite_mark, F64x8, Kernel};
 use ndarray::{s, ArrayView1, ArrayViewMut1};
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::Mutex;
 
 /// Steps per block of the parallel scan.
 pub const BLOCK: usize = 1 << 14;
@@ -590,9 +597,9 @@ impl<F: Real> BlockJob<'_, '_, '_, F> {
     }
 }
 
-/// Run the three-step blocked scan over every block, writing `first` (and
-/// `second` for GAE: advantages and returns) block by block. Returns whether
-/// every output is finite.
+/// Run the blocked scan over every block in one sweep ([`Par::chain`]),
+/// writing `first` (and `second` for GAE: advantages and returns) block by
+/// block. Returns whether every output is finite.
 fn blocked<F: Real>(
     r: &ArrayView1<'_, F>,
     v: Option<&ArrayView1<'_, F>>,
@@ -609,77 +616,83 @@ fn blocked<F: Real>(
     let nb = n.div_ceil(BLOCK);
     let bounds = |b: usize| (b * BLOCK, ((b + 1) * BLOCK).min(n));
     let k = Run8::new(kind.c());
-    // 1. Affine maps of every block but the first (its map is never needed).
-    let maps: Vec<Carry> = par.map_init((1..nb).collect(), Scratch::new, |scr, b| {
+    let at = |b: usize, carry: f64| {
         let (s0, s1) = bounds(b);
-        let e = pieces.piece_of(s0);
-        let ends_inside = pieces.offsets[e + 1] <= s1;
-        let job = BlockJob {
-            at: Block {
-                r,
-                v,
-                pieces,
-                kind,
-                k: &k,
-                s0,
-                s1,
-                carry: 0.0,
-            },
-            scratch: scr,
-            outs: None,
-        };
-        let (head, _) = job.go();
-        let factor = if ends_inside {
-            0.0
-        } else {
-            k.c().powi((s1 - s0) as i32)
-        };
-        Carry { head, factor }
-    });
-    // 2. Incoming carries, right to left. The last block ends a piece.
-    let mut carry = vec![0.0f64; nb];
-    for b in (0..nb.saturating_sub(1)).rev() {
-        carry[b] = maps[b].apply(carry[b + 1]);
-    }
-    // 3. Every block with its carry.
-    let firsts = split_blocks(first);
-    let items: Vec<(usize, ArrayViewMut1<'_, F>, Option<ArrayViewMut1<'_, F>>)> = match second {
-        Some(sec) => firsts
+        Block {
+            r,
+            v,
+            pieces,
+            kind,
+            k: &k,
+            s0,
+            s1,
+            carry,
+        }
+    };
+    // Each block's outputs, taken by whichever worker finishes that block.
+    type Outs<'o, F> = (ArrayViewMut1<'o, F>, Option<ArrayViewMut1<'o, F>>);
+    let slots: Vec<Mutex<Option<Outs<'_, F>>>> = match second {
+        Some(sec) => split_blocks(first)
             .into_iter()
             .zip(split_blocks(sec))
-            .enumerate()
-            .map(|(b, (a, c))| (b, a, Some(c)))
+            .map(|(a, c)| Mutex::new(Some((a, Some(c)))))
             .collect(),
-        None => firsts
+        None => split_blocks(first)
             .into_iter()
-            .enumerate()
-            .map(|(b, a)| (b, a, None))
+            .map(|a| Mutex::new(Some((a, None))))
             .collect(),
     };
-    let finite = std::sync::atomic::AtomicBool::new(true);
-    par.for_each_init(items, Scratch::new, |scr, (b, mut a, mut c)| {
-        let (s0, s1) = bounds(b);
-        let job = BlockJob {
-            at: Block {
-                r,
-                v,
-                pieces,
-                kind,
-                k: &k,
-                s0,
-                s1,
-                carry: carry[b],
-            },
-            scratch: scr,
-            outs: Some(BlockOuts {
-                first: &mut a,
-                second: c.as_mut(),
-            }),
-        };
-        if !job.go().1 {
-            finite.store(false, std::sync::atomic::Ordering::Relaxed);
-        }
-    });
+    let finite = AtomicBool::new(true);
+    // Item i of the chain is block nb - 1 - i (carries flow right to left);
+    // the value passed into it is the carry entering the block at its right
+    // edge (0 after the last block, which ends a piece).
+    par.chain(
+        nb,
+        0.0f64,
+        Scratch::new,
+        // 1. The block's affine map (the first block's is never needed).
+        |scr, i| {
+            let b = nb - 1 - i;
+            (b > 0).then(|| {
+                let (s0, s1) = bounds(b);
+                let e = pieces.piece_of(s0);
+                let ends_inside = pieces.offsets[e + 1] <= s1;
+                let job = BlockJob {
+                    at: at(b, 0.0),
+                    scratch: scr,
+                    outs: None,
+                };
+                let (head, _) = job.go();
+                let factor = if ends_inside {
+                    0.0
+                } else {
+                    k.c().powi((s1 - s0) as i32)
+                };
+                Carry { head, factor }
+            })
+        },
+        // 2. The carry into the block on the left.
+        |map, carry| map.map_or(0.0, |m| m.apply(carry)),
+        // 3. The block with its carry, outputs stored.
+        |scr, i, _, carry| {
+            let b = nb - 1 - i;
+            let taken = slots[b].lock().ok().and_then(|mut g| g.take());
+            let Some((mut a, mut c)) = taken else {
+                return;
+            };
+            let job = BlockJob {
+                at: at(b, carry),
+                scratch: scr,
+                outs: Some(BlockOuts {
+                    first: &mut a,
+                    second: c.as_mut(),
+                }),
+            };
+            if !job.go().1 {
+                finite.store(false, Ordering::Relaxed);
+            }
+        },
+    );
     finite.into_inner()
 }
 

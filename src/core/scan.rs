@@ -88,18 +88,6 @@ impl Run8 {
         let y = self.k4.madd::<FMA>(y.shift::<4>(), y);
         self.pw.madd::<FMA>(F64x8::splat(carry), y)
     }
-
-    /// `y[0]` of one block only (for affine maps: no outputs are stored).
-    #[inline(always)]
-    pub fn first<const FMA: bool>(&self, x: &F64x8, carry: f64) -> f64 {
-        // c^i x[i] summed: one lane of the block's product.
-        let mut s = [0.0f64; W];
-        for (i, v) in s.iter_mut().enumerate() {
-            *v = self.p0.0[i] * x.0[i];
-        }
-        let t = (s[0] + s[1]) + (s[2] + s[3]) + ((s[4] + s[5]) + (s[6] + s[7]));
-        madd::<FMA>(self.pw.0[0], carry, t)
-    }
 }
 
 /// Inputs of a run: `x[t]` at absolute step `t`, 8 at a time or one.
@@ -166,6 +154,18 @@ pub fn run<const FMA: bool, T: Terms, S: Sink>(
 }
 
 /// `y[lo]` of the run `[lo, hi)` with `y[hi] = carry`, storing nothing.
+///
+/// Only one value is needed, so no in-register scan: with the run's full
+/// 8-step blocks `t_0 > t_1 > ... > t_{K-1}` taken from the right, lane `i`
+/// keeps `acc_i = sum_k c^(8 (K-1-k)) x[t_k + i]` by Horner
+/// (`acc = c^8 acc + x[t_k..t_k + 8]`: one vector multiply-add per 8 steps,
+/// no dependency between lanes), and then
+///
+/// ```text
+/// y[t_{K-1}] = sum_i c^i acc_i + c^(8K) carry
+/// ```
+///
+/// The steps left over at the run's left end are taken one at a time.
 #[inline(always)]
 pub fn run_first<const FMA: bool, T: Terms>(
     k: &Run8,
@@ -174,14 +174,37 @@ pub fn run_first<const FMA: bool, T: Terms>(
     hi: usize,
     carry: f64,
 ) -> f64 {
-    let mut y = carry;
     if k.c == 0.0 {
         return if hi > lo { terms.x1(lo) } else { carry };
     }
+    let c8 = k.pw.0[0];
+    // Two 4-lane halves (lanes j and j + 4): the shape of two vector
+    // registers, which the compiler keeps whole (one 8-lane array it splits
+    // into pairs with shuffles around every conversion).
+    let (mut lo4, mut hi4) = ([0.0f64; 4], [0.0f64; 4]);
     let mut t = hi;
     while t >= lo + W {
         t -= W;
-        y = k.first::<FMA>(&terms.x8(t), y);
+        let x = terms.x8(t).0;
+        for j in 0..4 {
+            lo4[j] = madd::<FMA>(c8, lo4[j], x[j]);
+            hi4[j] = madd::<FMA>(c8, hi4[j], x[j + 4]);
+        }
+    }
+    let mut y = carry;
+    let blocks = (hi - t) / W;
+    if blocks > 0 {
+        let mut h = [0.0f64; 4];
+        for (j, v) in h.iter_mut().enumerate() {
+            *v = k.p0.0[j] * lo4[j] + k.p0.0[j + 4] * hi4[j];
+        }
+        let sum = (h[0] + h[2]) + (h[1] + h[3]);
+        // `c^(8K) carry`, left out when the carry is 0 (the maps' case).
+        y = if carry == 0.0 {
+            sum
+        } else {
+            madd::<FMA>(k.c.powi((W * blocks) as i32), carry, sum)
+        };
     }
     while t > lo {
         t -= 1;
