@@ -156,13 +156,13 @@ pub fn run<const FMA: bool, T: Terms, S: Sink>(
 /// `y[lo]` of the run `[lo, hi)` with `y[hi] = carry`, storing nothing.
 ///
 /// Only one value is needed, so no in-register scan: with the run's full
-/// 8-step blocks `t_0 > t_1 > ... > t_{K-1}` taken from the right, lane `i`
-/// keeps `acc_i = sum_k c^(8 (K-1-k)) x[t_k + i]` by Horner
-/// (`acc = c^8 acc + x[t_k..t_k + 8]`: one vector multiply-add per 8 steps,
-/// no dependency between lanes), and then
+/// 4-step groups `g_0 > g_1 > ... > g_{M-1}` taken from the right (two per
+/// 8-step block), lane `j` keeps `acc_j = sum_m c^(4 (M-1-m)) x[g_m + j]` by
+/// Horner (`acc = c^4 acc + x[g_m..g_m + 4]`: one vector multiply-add per 4
+/// steps), and then
 ///
 /// ```text
-/// y[t_{K-1}] = sum_i c^i acc_i + c^(8K) carry
+/// y[g_{M-1}] = sum_j c^j acc_j + c^(4M) carry
 /// ```
 ///
 /// The steps left over at the run's left end are taken one at a time.
@@ -177,18 +177,22 @@ pub fn run_first<const FMA: bool, T: Terms>(
     if k.c == 0.0 {
         return if hi > lo { terms.x1(lo) } else { carry };
     }
-    let c8 = k.pw.0[0];
-    // Two 4-lane halves (lanes j and j + 4): the shape of two vector
-    // registers, which the compiler keeps whole (one 8-lane array it splits
-    // into pairs with shuffles around every conversion).
-    let (mut lo4, mut hi4) = ([0.0f64; 4], [0.0f64; 4]);
+    // One 4-lane accumulator (the width of a vector register), fed the upper
+    // and then the lower half of each 8 steps with `c^4`: lane j keeps
+    // `acc_j = sum_m c^(4 (M-1-m)) x[4m + j]` over the run's 4-step groups.
+    // (An 8-lane array here is split by the compiler into 2-lane pairs with
+    // shuffles around every conversion.)
+    let c4 = k.pw.0[4];
+    let mut acc = [0.0f64; 4];
     let mut t = hi;
     while t >= lo + W {
         t -= W;
         let x = terms.x8(t).0;
         for j in 0..4 {
-            lo4[j] = madd::<FMA>(c8, lo4[j], x[j]);
-            hi4[j] = madd::<FMA>(c8, hi4[j], x[j + 4]);
+            acc[j] = madd::<FMA>(c4, acc[j], x[j + 4]);
+        }
+        for j in 0..4 {
+            acc[j] = madd::<FMA>(c4, acc[j], x[j]);
         }
     }
     let mut y = carry;
@@ -196,7 +200,7 @@ pub fn run_first<const FMA: bool, T: Terms>(
     if blocks > 0 {
         let mut h = [0.0f64; 4];
         for (j, v) in h.iter_mut().enumerate() {
-            *v = k.p0.0[j] * lo4[j] + k.p0.0[j + 4] * hi4[j];
+            *v = k.p0.0[j] * acc[j];
         }
         let sum = (h[0] + h[2]) + (h[1] + h[3]);
         // `c^(8K) carry`, left out when the carry is 0 (the maps' case).
