@@ -6,7 +6,7 @@
 //! depends on the number of threads, so results are bit-identical either way.
 
 use rayon::prelude::*;
-use std::sync::atomic::{AtomicBool, AtomicUsize, Ordering};
+use std::sync::atomic::{AtomicUsize, Ordering};
 use std::sync::OnceLock;
 
 /// Below this many elements of work a kernel stays on the calling thread:
@@ -79,19 +79,24 @@ impl Par {
     /// (the value into item 0 is `first`), in a single sweep:
     ///
     /// 1. `prepare(scratch, i)` does item `i`'s own work (in parallel);
-    /// 2. once item `i - 1` has passed its value `x`, item `i` passes
-    ///    `link(&p, x)` on at once (the only serial part, meant to be cheap);
+    /// 2. once the value `x` into item `i` is known, `link(&p, x)`, the value
+    ///    into item `i + 1`, is published at once (the only serial part,
+    ///    meant to be cheap);
     /// 3. `finish(scratch, i, p, x)` completes item `i` (in parallel).
     ///
-    /// Workers claim items in order, so every item waits only for one claimed
-    /// before it, by a worker that is already running it: the chain always
-    /// progresses. `link` runs once per item, in item order, on the values it
-    /// was given, so the values (and every result) are the same for any number
-    /// of workers. An item's data is touched by `prepare` and `finish` on one
-    /// worker, back to back, while it is still in that core's cache.
-    ///
-    /// A panic in `prepare` or `link` stops the waiting workers (they would
-    /// otherwise wait for a value that never comes) and is then re-raised.
+    /// Workers claim items in order, so an item normally waits only briefly,
+    /// for the item claimed just before it. The values obey the fixed
+    /// recurrence `x[i + 1] = link(prepare(i), x[i])`, and `prepare` must be a
+    /// pure function of `i` (scratch is only a work area), so every value is
+    /// the same whoever computes it: a worker that has waited longer than an
+    /// item's own work should take (the one before it was descheduled, on a
+    /// busy machine) computes the missing `prepare` results and values
+    /// itself instead of waiting a whole time slice. Results therefore do not
+    /// depend on the number of workers or on timing. An item's data is
+    /// touched by `prepare` and `finish` on one worker, back to back, while it
+    /// is still in that core's cache. A panic in `prepare` is met again by
+    /// whichever worker steps in for that item, so it propagates instead of
+    /// leaving others waiting.
     pub fn chain<T, S, P, I, Pr, L, Fi>(
         self,
         n: usize,
@@ -102,6 +107,7 @@ impl Par {
         finish: Fi,
     ) where
         T: Copy + Send + Sync,
+        P: Copy + Send + Sync,
         I: Fn() -> S + Sync + Send,
         Pr: Fn(&mut S, usize) -> P + Sync + Send,
         L: Fn(&P, T) -> T + Sync + Send,
@@ -111,26 +117,20 @@ impl Par {
             return;
         }
         let relay = Relay {
+            first,
             next: AtomicUsize::new(0),
+            prepared: (0..n).map(|_| OnceLock::new()).collect(),
             values: (0..n).map(|_| OnceLock::new()).collect(),
-            broken: AtomicBool::new(false),
         };
         let _ = relay.values[0].set(first);
         let worker = || {
             let mut scratch = init();
             while let Some(i) = relay.claim() {
-                // Until this item has passed its value on, an unwind from it
-                // must release the workers waiting for that value.
-                let guard = BreakOnUnwind(&relay.broken);
-                let p = prepare(&mut scratch, i);
-                let Some(x) = relay.wait(i) else {
-                    std::mem::forget(guard);
-                    return;
-                };
+                let p = relay.prepared(i, &mut scratch, &prepare);
+                let x = relay.value(i, &mut scratch, &prepare, &link);
                 if i + 1 < n {
                     let _ = relay.values[i + 1].set(link(&p, x));
                 }
-                std::mem::forget(guard);
                 finish(&mut scratch, i, p, x);
             }
         };
@@ -152,52 +152,78 @@ impl Par {
     }
 }
 
-/// The shared state of one [`Par::chain`]: the next item to claim and the
-/// value passed into each item.
-struct Relay<T> {
+/// How long a chain item waits for the value into it before computing it
+/// itself: well above the `prepare` of one item (a few to tens of
+/// microseconds for the kernels' blocks), well below an OS time slice.
+const CHAIN_PATIENCE: std::time::Duration = std::time::Duration::from_micros(200);
+
+/// The shared state of one [`Par::chain`]: the next item to claim, each
+/// item's `prepare` result once known, and the value into each item.
+struct Relay<T, P> {
+    first: T,
     next: AtomicUsize,
+    prepared: Vec<OnceLock<P>>,
     values: Vec<OnceLock<T>>,
-    /// Set when an item unwound before passing its value on.
-    broken: AtomicBool,
 }
 
-impl<T: Copy> Relay<T> {
+impl<T: Copy, P: Copy> Relay<T, P> {
     /// The next unclaimed item, if any.
     fn claim(&self) -> Option<usize> {
         let i = self.next.fetch_add(1, Ordering::Relaxed);
         (i < self.values.len()).then_some(i)
     }
 
-    /// The value passed into item `i`, once item `i - 1` has passed it; `None`
-    /// when the chain broke. `OnceLock` orders the write before this read.
-    fn wait(&self, i: usize) -> Option<T> {
+    /// Item `k`'s `prepare` result: published if some worker has it, else
+    /// computed here and published (a second computation gives the same).
+    fn prepared<S>(&self, k: usize, scratch: &mut S, prepare: &impl Fn(&mut S, usize) -> P) -> P {
+        if let Some(&p) = self.prepared[k].get() {
+            return p;
+        }
+        let p = prepare(scratch, k);
+        let _ = self.prepared[k].set(p);
+        p
+    }
+
+    /// The value into item `i`. Waits for the worker of item `i - 1`, and
+    /// past [`CHAIN_PATIENCE`] computes it from the last value known,
+    /// preparing the items in between where their results are not published.
+    /// `OnceLock` orders every publication before the reads that see it.
+    fn value<S>(
+        &self,
+        i: usize,
+        scratch: &mut S,
+        prepare: &impl Fn(&mut S, usize) -> P,
+        link: &impl Fn(&P, T) -> T,
+    ) -> T {
         let mut spins = 0u32;
+        let mut since: Option<std::time::Instant> = None;
         loop {
             if let Some(&x) = self.values[i].get() {
-                return Some(x);
+                return x;
             }
-            if self.broken.load(Ordering::Acquire) {
-                return None;
-            }
-            // The item before is already being worked on: spin briefly, then
-            // give the core away (it may be the one that worker needs).
             spins += 1;
-            if spins < 256 {
+            if spins % 64 != 0 {
                 std::hint::spin_loop();
-            } else {
-                std::thread::yield_now();
+                continue;
             }
+            let started = *since.get_or_insert_with(std::time::Instant::now);
+            if started.elapsed() < CHAIN_PATIENCE {
+                std::thread::yield_now();
+                continue;
+            }
+            // Step in: from the last known value, forward to item i.
+            let (j, mut x) = (0..i)
+                .rev()
+                .find_map(|j| self.values[j].get().map(|&x| (j, x)))
+                .unwrap_or((0, self.first));
+            for k in j..i {
+                let p = self.prepared(k, scratch, prepare);
+                x = link(&p, x);
+                // Whoever publishes first, the value is the same.
+                x = *self.values[k + 1].get_or_init(|| x);
+            }
+            return x;
         }
-    }
-}
-
-/// Marks a chain broken if dropped during an unwind (it is forgotten on the
-/// normal path).
-struct BreakOnUnwind<'a>(&'a AtomicBool);
-
-impl Drop for BreakOnUnwind<'_> {
-    fn drop(&mut self) {
-        self.0.store(true, Ordering::Release);
     }
 }
 
@@ -243,7 +269,7 @@ mod tests {
     }
 
     #[test]
-    fn a_panicking_item_stops_the_chain_instead_of_hanging_it() {
+    fn a_panicking_item_is_raised_instead_of_hanging_the_chain() {
         let pool = rayon::ThreadPoolBuilder::new()
             .num_threads(4)
             .build()
@@ -274,5 +300,58 @@ mod tests {
                 "no item after the broken one ran"
             );
         }
+    }
+
+    /// Item 3's worker stalls in `prepare` until item 6 has finished, which
+    /// only happens if another worker steps in for item 3: without that, the
+    /// chain would wait for it (here for up to 20 s, then fail).
+    #[test]
+    fn a_stalled_item_is_stepped_over_with_the_same_values() {
+        let pool = rayon::ThreadPoolBuilder::new()
+            .num_threads(2)
+            .build()
+            .unwrap();
+        let n = 10;
+        let done6 = std::sync::atomic::AtomicBool::new(false);
+        let calls3 = AtomicUsize::new(0);
+        let saw_done6 = std::sync::atomic::AtomicBool::new(false);
+        let got = Mutex::new(vec![u64::MAX; n]);
+        pool.install(|| {
+            Par::Rayon.chain(
+                n,
+                0u64,
+                || (),
+                |_, i| {
+                    if i == 3 && calls3.fetch_add(1, Ordering::SeqCst) == 0 {
+                        let t0 = std::time::Instant::now();
+                        while !done6.load(Ordering::SeqCst)
+                            && t0.elapsed() < std::time::Duration::from_secs(20)
+                        {
+                            std::thread::sleep(std::time::Duration::from_millis(1));
+                        }
+                        saw_done6.store(done6.load(Ordering::SeqCst), Ordering::SeqCst);
+                    }
+                    i as u64
+                },
+                |&p, x| x + p,
+                |_, i, _, x| {
+                    got.lock().unwrap()[i] = x;
+                    if i == 6 {
+                        done6.store(true, Ordering::SeqCst);
+                    }
+                },
+            )
+        });
+        assert!(
+            saw_done6.into_inner(),
+            "another worker stepped in for item 3"
+        );
+        assert_eq!(
+            calls3.into_inner(),
+            2,
+            "item 3 prepared by its worker and the helper"
+        );
+        let want: Vec<u64> = (0..n as u64).map(|i| i * i.saturating_sub(1) / 2).collect();
+        assert_eq!(got.into_inner().unwrap(), want);
     }
 }
