@@ -224,6 +224,38 @@ def test_environment_variable_sets_pool_size(n):
     assert res.stdout.splitlines()[1] == "[1.75, 1.5, 1.0]"
 
 
+@pytest.mark.parametrize("bad", ["two", "0", "-3", "1.5", ""])
+def test_unusable_environment_variable_warns_and_falls_back(bad):
+    env = dict(os.environ, ROLLSCAN_NUM_THREADS=bad)
+    code = (
+        "import numpy as np, rollscan\n"
+        "print(rollscan.get_num_threads() >= 1)\n"
+        "print(rollscan.discounted_returns(np.ones(3), gamma=0.5).tolist())\n"
+    )
+    res = subprocess.run(
+        [sys.executable, "-c", code], env=env, capture_output=True, text=True, timeout=60
+    )
+    assert res.returncode == 0, res.stderr
+    assert "RuntimeWarning" in res.stderr
+    assert f"ROLLSCAN_NUM_THREADS={bad!r} is not a whole number >= 1" in res.stderr
+    assert res.stdout.splitlines() == ["True", "[1.75, 1.5, 1.0]"]
+
+
+@pytest.mark.parametrize("ok", [" 2 ", "+2"])
+def test_usable_environment_variable_spellings_do_not_warn(ok):
+    env = dict(os.environ, ROLLSCAN_NUM_THREADS=ok)
+    code = "import rollscan\nprint(rollscan.get_num_threads())\n"
+    res = subprocess.run(
+        [sys.executable, "-W", "error", "-c", code],
+        env=env,
+        capture_output=True,
+        text=True,
+        timeout=60,
+    )
+    assert res.returncode == 0, res.stderr
+    assert res.stdout.split() == ["2"]
+
+
 @pytest.mark.skipif(not hasattr(os, "fork"), reason="needs os.fork")
 @pytest.mark.timeout(120)
 def test_forked_child_can_run_kernels(rng, restore_threads):

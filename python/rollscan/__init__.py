@@ -50,6 +50,33 @@ from .streaming import EpisodeTracker, FinishedEpisodes, ReturnScaler, RunningMo
 if hasattr(_os, "register_at_fork"):
     _os.register_at_fork(after_in_child=_core._after_fork_in_child)
 
+
+def _check_thread_setting() -> None:
+    """Warn when ROLLSCAN_NUM_THREADS is set but unusable.
+
+    The pool reads it (a whole number >= 1, surrounding spaces and a leading
+    ``+`` allowed) and falls back to one thread per CPU otherwise; a typo
+    should not pass silently.
+    """
+    import re
+    import warnings
+
+    raw = _os.environ.get("ROLLSCAN_NUM_THREADS")
+    if raw is None:
+        return
+    text = raw.strip()
+    if re.fullmatch(r"\+?[0-9]+", text) and 1 <= int(text) < 2**64:
+        return
+    warnings.warn(
+        f"ROLLSCAN_NUM_THREADS={raw!r} is not a whole number >= 1; "
+        "using one thread per CPU instead",
+        RuntimeWarning,
+        stacklevel=3,
+    )
+
+
+_check_thread_setting()
+
 __all__ = [
     "EpisodeTracker",
     "FinishedEpisodes",
