@@ -189,23 +189,19 @@ impl<'py, F: Element + Real> Borrowed<'py, F> {
     /// trainer buffer), with a `[N]` bootstrap if any. Saves most of the
     /// per-call cost of small buffers.
     pub fn plain(&self, time_axis: usize) -> Option<Steps<'_, F>> {
-        fn two<'b, T: Element>(a: &'b PyReadonlyArrayDyn<'_, T>) -> Option<ArrayView2<'b, T>> {
-            let v = a.as_array().into_dimensionality::<Ix2>().ok()?;
-            v.is_standard_layout().then_some(v)
-        }
         fn opt<'b, T: Element>(
             a: Option<&'b PyReadonlyArrayDyn<'_, T>>,
         ) -> Option<Option<ArrayView2<'b, T>>> {
             match a {
                 None => Some(None),
-                Some(a) => two(a).map(Some),
+                Some(a) => plain_in(a).map(Some),
             }
         }
         if time_axis != 0 {
             return None;
         }
         Some(Steps {
-            rewards: two(&self.r)?,
+            rewards: plain_in(&self.r)?,
             values: opt(self.v.as_ref())?,
             next_values: opt(self.nv.as_ref())?,
             terminated: opt(self.te.as_ref())?,
@@ -267,7 +263,7 @@ impl<'py, F: Element + Real> Borrowed<'py, F> {
 
 /// The work to announce for a plain call: none (stay on this thread) when the
 /// fast path would not split the streams between threads anyway.
-fn plain_work<F>(steps: &Steps<'_, F>, work: usize) -> usize {
+pub(crate) fn plain_work<F>(steps: &Steps<'_, F>, work: usize) -> usize {
     if crate::core::rows::splits_streams(steps.rewards.ncols()) {
         work
     } else {
@@ -275,8 +271,17 @@ fn plain_work<F>(steps: &Steps<'_, F>, work: usize) -> usize {
     }
 }
 
+/// An input of a plain call (see [`Borrowed::plain`]) as a `[T, N]` view,
+/// when it is 2-D and C-contiguous.
+pub(crate) fn plain_in<'b, T: Element>(
+    a: &'b PyReadonlyArrayDyn<'_, T>,
+) -> Option<ArrayView2<'b, T>> {
+    let v = a.as_array().into_dimensionality::<Ix2>().ok()?;
+    v.is_standard_layout().then_some(v)
+}
+
 /// An output as a `[T, N]` view when it is 2-D and C-contiguous.
-fn plain_out<F>(o: ArrayViewMutD<'_, F>) -> Option<ArrayViewMut2<'_, F>> {
+pub(crate) fn plain_out<F>(o: ArrayViewMutD<'_, F>) -> Option<ArrayViewMut2<'_, F>> {
     let v = o.into_dimensionality::<Ix2>().ok()?;
     v.is_standard_layout().then_some(v)
 }

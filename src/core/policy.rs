@@ -22,6 +22,7 @@ use super::error::{At, CoreError, CoreResult};
 use super::fastmath;
 use super::float::Real;
 use super::par::Par;
+use super::simd::{dispatch, finite_mark, isa, F64x8, Isa, Kernel};
 use ndarray::{ArrayView1, ArrayViewD, ArrayViewMutD, Axis, IxDyn};
 
 /// Elements per reduction block.
@@ -152,17 +153,6 @@ pub fn clipped_surrogate<F: Real>(
             "must have at least one axis",
         ));
     }
-    if check_finite {
-        for (name, a) in [
-            ("new_log_prob", &new_log_prob),
-            ("old_log_prob", &old_log_prob),
-            ("advantages", &advantages),
-        ] {
-            if let Some(i) = first_non_finite(a, par) {
-                return Err(CoreError::non_finite(name, At::Flat(i)));
-            }
-        }
-    }
     let blocks = row_blocks(&shape);
     let count = match &mask {
         None => new_log_prob.len(),
@@ -256,7 +246,20 @@ pub fn clipped_surrogate<F: Real>(
             }
         }
     });
-    let tot = parts.into_iter().fold(Partial::ZERO, Partial::add);
+    // The kernel marks non-finite inputs as it goes; only then are they
+    // searched, in argument order, for the first one.
+    if check_finite && parts.iter().any(|&(_, bad)| bad) {
+        for (name, a) in [
+            ("new_log_prob", &new_log_prob),
+            ("old_log_prob", &old_log_prob),
+            ("advantages", &advantages),
+        ] {
+            if let Some(i) = first_non_finite(a, par) {
+                return Err(CoreError::non_finite(name, At::Flat(i)));
+            }
+        }
+    }
+    let tot = parts.into_iter().fold(Partial::ZERO, |t, (p, _)| t.add(p));
     Ok(Surrogate {
         loss: -tot.obj * inv_n,
         clip_fraction: tot.clipped * inv_n,
@@ -312,7 +315,11 @@ fn element(log_r: f64, r: f64, a: f64, sel: bool, c: &Consts) -> (f64, f64, f64,
     }
 }
 
-/// [`block_kernel`], in its AVX2 copy when the CPU allows (same bits).
+/// [`block_kernel`] compiled for the widest vector unit of this CPU: the
+/// AVX-512 copy of [`dispatch`], else an AVX2 copy without FMA (in the
+/// AVX2 + FMA copy of `dispatch` LLVM leaves the elementwise loop scalar),
+/// else the baseline, which tests force with [`fastmath::set_wide_off`]. No
+/// copy fuses multiply-adds, so all give the same bits.
 fn block_dispatch<F: Real>(
     nl: &[F],
     ol: &[F],
@@ -320,7 +327,7 @@ fn block_dispatch<F: Real>(
     m: Option<&[bool]>,
     g: &mut [F],
     c: &Consts,
-) -> Partial {
+) -> (Partial, bool) {
     #[cfg(target_arch = "x86_64")]
     {
         #[target_feature(enable = "avx2")]
@@ -331,10 +338,20 @@ fn block_dispatch<F: Real>(
             m: Option<&[bool]>,
             g: &mut [F],
             c: &Consts,
-        ) -> Partial {
+        ) -> (Partial, bool) {
             block_kernel(nl, ol, ad, m, g, c)
         }
         if fastmath::wide_ok() {
+            if isa() == Isa::Avx512 {
+                return dispatch(Block {
+                    nl,
+                    ol,
+                    ad,
+                    m,
+                    g,
+                    c,
+                });
+            }
             // SAFETY: `avx2` only requires the CPU to support AVX2, which
             // `wide_ok` has just confirmed at run time.
             return unsafe { avx2(nl, ol, ad, m, g, c) };
@@ -343,16 +360,37 @@ fn block_dispatch<F: Real>(
     block_kernel(nl, ol, ad, m, g, c)
 }
 
+/// The arguments of [`block_kernel`], as a [`Kernel`].
+struct Block<'a, F> {
+    nl: &'a [F],
+    ol: &'a [F],
+    ad: &'a [F],
+    m: Option<&'a [bool]>,
+    g: &'a mut [F],
+    c: &'a Consts,
+}
+
+impl<F: Real> Kernel for Block<'_, F> {
+    type Output = (Partial, bool);
+    #[inline(always)]
+    fn run<const FMA: bool>(self) -> (Partial, bool) {
+        block_kernel(self.nl, self.ol, self.ad, self.m, self.g, self.c)
+    }
+}
+
 /// Elements per pass of [`block_kernel`] (a multiple of [`LANES`]): its
 /// per-element terms stay in L1.
 const SUB: usize = 512;
 
 /// One block of contiguous elements (logical order): writes `g`, returns the
-/// block's sums. Element `i` goes to lane `i % LANES`.
+/// block's sums and whether some input element is not finite (an `f64`
+/// log-ratio that overflows also counts; the caller's search then finds
+/// nothing). Element `i` goes to lane `i % LANES`.
 ///
-/// Two plain loops per sub-block: one elementwise pass (the `exp`, the
-/// clipping, the gradient) into small `f64` arrays, which the loop vectoriser
-/// handles well, then the lane sums over those arrays.
+/// Plain loops per sub-block: the finite marks, one elementwise pass (the
+/// `exp`, the clipping, the gradient) into small `f64` arrays, which the loop
+/// vectoriser handles well, then the lane sums over those arrays in
+/// [`F64x8`] steps.
 #[inline(always)]
 fn block_kernel<F: Real>(
     nl: &[F],
@@ -361,16 +399,15 @@ fn block_kernel<F: Real>(
     m: Option<&[bool]>,
     g: &mut [F],
     c: &Consts,
-) -> Partial {
+) -> (Partial, bool) {
     let n = g.len();
     let (nl, ol, ad) = (&nl[..n], &ol[..n], &ad[..n]);
-    let mut acc = Acc {
-        obj: [0.0; LANES],
-        kl: [0.0; LANES],
-        ratio: [0.0; LANES],
-        clipped: [0.0; LANES],
-        rmax: [f64::NEG_INFINITY; LANES],
-    };
+    let zero = F64x8::splat(0.0);
+    let (mut a_obj, mut a_kl, mut a_ratio, mut a_clipped) = (zero, zero, zero, zero);
+    let mut a_rmax = [f64::NEG_INFINITY; LANES];
+    // The OR of the bits of the inputs' finite marks: 0 while all are finite
+    // (an integer reduction, which keeps the loop vectorised).
+    let mut bad = 0u64;
     let mut obj = [0.0f64; SUB];
     let mut kl = [0.0f64; SUB];
     let mut rat = [0.0f64; SUB];
@@ -387,6 +424,12 @@ fn block_kernel<F: Real>(
             &ad[s0..s0 + k],
             &mut g[s0..s0 + k],
         );
+        // The marks in a loop of their own: in the loop with the `exp`,
+        // the reduction keeps LLVM from vectorising it.
+        for i in 0..k {
+            let lr = nl[i].to_f64() - ol[i].to_f64();
+            bad |= finite_mark(lr).to_bits() | finite_mark(ad[i].to_f64()).to_bits();
+        }
         let terms = |i: usize, sel: bool| {
             let lr = nl[i].to_f64() - ol[i].to_f64();
             let r = fastmath::exp(lr);
@@ -413,43 +456,42 @@ fn block_kernel<F: Real>(
         for i in k..kp {
             (obj[i], kl[i], rat[i], cf[i], rm[i]) = (0.0, 0.0, 0.0, 0.0, f64::NEG_INFINITY);
         }
+        let lanes = |a: &[f64; SUB], j: usize| {
+            let mut o = [0.0; LANES];
+            o.copy_from_slice(&a[j..j + LANES]);
+            F64x8(o)
+        };
+        // One loop per quantity, so each keeps its 8 lane sums in registers
+        // (with all four in one loop LLVM pairs lanes of different sums).
+        for (acc, a) in [
+            (&mut a_obj, &obj),
+            (&mut a_kl, &kl),
+            (&mut a_ratio, &rat),
+            (&mut a_clipped, &cf),
+        ] {
+            for j in (0..kp).step_by(LANES) {
+                *acc = *acc + lanes(a, j);
+            }
+        }
         for j in (0..kp).step_by(LANES) {
-            for l in 0..LANES {
-                acc.obj[l] += obj[j + l];
-                acc.kl[l] += kl[j + l];
-                acc.ratio[l] += rat[j + l];
-                acc.clipped[l] += cf[j + l];
-                let x = rm[j + l];
+            for (acc, &x) in a_rmax.iter_mut().zip(&rm[j..j + LANES]) {
                 // Sticky NaN: once a lane's max is NaN it stays NaN.
-                acc.rmax[l] = if x > acc.rmax[l] || x.is_nan() {
-                    x
-                } else {
-                    acc.rmax[l]
-                };
+                *acc = if x > *acc || x.is_nan() { x } else { *acc };
             }
         }
         s0 += k;
     }
     let mut p = Partial::ZERO;
-    for l in 0..LANES {
+    for (l, &ratio_max) in a_rmax.iter().enumerate() {
         p = p.add(Partial {
-            obj: acc.obj[l],
-            kl: acc.kl[l],
-            ratio: acc.ratio[l],
-            ratio_max: acc.rmax[l],
-            clipped: acc.clipped[l],
+            obj: a_obj.0[l],
+            kl: a_kl.0[l],
+            ratio: a_ratio.0[l],
+            ratio_max,
+            clipped: a_clipped.0[l],
         });
     }
-    p
-}
-
-/// Per-lane partial sums of [`block_kernel`].
-struct Acc {
-    obj: [f64; LANES],
-    kl: [f64; LANES],
-    ratio: [f64; LANES],
-    clipped: [f64; LANES],
-    rmax: [f64; LANES],
+    (p, bad != 0)
 }
 
 /// The first non-finite element in logical row-major order.
@@ -652,5 +694,151 @@ mod tests {
         )
         .unwrap_err();
         assert!(matches!(e, CoreError::Input { arg: "clip", .. }));
+    }
+
+    /// The vectorised kernel against a plain loop written from the module's
+    /// documented order (element `i` of a block to lane `i % 8`, lanes then
+    /// blocks combined in order), bit for bit: f32 and f64, with and without
+    /// a mask, a length that is not a multiple of 8 or of the block.
+    #[test]
+    fn kernel_equals_plain_loop_bit_for_bit() {
+        fn plain<F: Real>(
+            nl: &[F],
+            ol: &[F],
+            a: &[F],
+            m: &[bool],
+            clip: f64,
+        ) -> (Surrogate, Vec<F>) {
+            let count = m.iter().filter(|&&k| k).count();
+            let c = Consts {
+                lo: 1.0 - clip,
+                hi: 1.0 + clip,
+                clip,
+                inv_n: 1.0 / count as f64,
+            };
+            let mut g = vec![F::from_f64(0.0); nl.len()];
+            let mut tot = Partial::ZERO;
+            for b0 in (0..nl.len()).step_by(BLOCK) {
+                let mut lanes = [Partial::ZERO; LANES];
+                for i in b0..(b0 + BLOCK).min(nl.len()) {
+                    let lr = nl[i].to_f64() - ol[i].to_f64();
+                    let r = fastmath::exp(lr);
+                    let (d, o, k, rr, f) = element(lr, r, a[i].to_f64(), m[i], &c);
+                    g[i] = F::from_f64(d);
+                    let l = &mut lanes[(i - b0) % LANES];
+                    l.obj += o;
+                    l.kl += k;
+                    l.ratio += rr;
+                    l.clipped += f;
+                    if m[i] && (r > l.ratio_max || r.is_nan()) {
+                        l.ratio_max = r;
+                    }
+                }
+                let block = lanes.into_iter().fold(Partial::ZERO, Partial::add);
+                tot = tot.add(block);
+            }
+            let s = Surrogate {
+                loss: -tot.obj * c.inv_n,
+                clip_fraction: tot.clipped * c.inv_n,
+                approx_kl: tot.kl * c.inv_n,
+                ratio_mean: tot.ratio * c.inv_n,
+                ratio_max: tot.ratio_max,
+                count,
+            };
+            (s, g)
+        }
+        fn check<F: Real>(n: usize, masked: bool, seed: &mut u64) {
+            let mut f = |a: f64, b: f64| {
+                (0..n)
+                    .map(|_| F::from_f64(a + (b - a) * lcg(seed)))
+                    .collect::<Vec<F>>()
+            };
+            let (nl, ol, ad) = (f(-2.0, -0.5), f(-2.0, -0.5), f(-1.0, 1.0));
+            let m: Vec<bool> = (0..n).map(|i| !masked || i % 7 != 3).collect();
+            let (want, wg) = plain(&nl, &ol, &ad, &m, 0.2);
+            fn one<F>(x: &[F]) -> ArrayViewD<'_, F> {
+                ndarray::ArrayView1::from(x).into_dyn()
+            }
+            let mv = ndarray::ArrayView1::from(&m[..]).into_dyn();
+            for par in [Par::Seq, Par::Rayon] {
+                let mut g = vec![F::from_f64(0.0); n];
+                let got = clipped_surrogate(
+                    one(&nl),
+                    one(&ol),
+                    one(&ad),
+                    if masked { Some(mv.clone()) } else { None },
+                    0.2,
+                    true,
+                    ndarray::ArrayViewMut1::from(&mut g[..]).into_dyn(),
+                    par,
+                )
+                .unwrap();
+                let bits = |s: &Surrogate| {
+                    [
+                        s.loss,
+                        s.clip_fraction,
+                        s.approx_kl,
+                        s.ratio_mean,
+                        s.ratio_max,
+                    ]
+                    .map(f64::to_bits)
+                };
+                assert_eq!(bits(&got), bits(&want), "{} n={n} masked={masked}", F::NAME);
+                assert_eq!(got.count, want.count);
+                assert!(g
+                    .iter()
+                    .zip(&wg)
+                    .all(|(x, y)| x.to_f64().to_bits() == y.to_f64().to_bits()));
+            }
+        }
+        let mut seed = 17u64;
+        for &n in &[1usize, 13, 512, 1000, BLOCK + 77, 3 * BLOCK] {
+            for masked in [false, true] {
+                check::<f32>(n, masked, &mut seed);
+                check::<f64>(n, masked, &mut seed);
+            }
+        }
+    }
+
+    /// Non-finite inputs are found after the kernel, and the error names the
+    /// first one in argument order, masked-out elements included, as the
+    /// up-front scans did.
+    #[test]
+    fn non_finite_inputs_are_reported_in_argument_order() {
+        let n = 3 * BLOCK + 5;
+        let base = Array1::from_shape_fn(n, |i| -1.0 - (i % 10) as f64 * 0.05);
+        let (mut nl, mut ol, mut ad) = (base.clone(), base.clone(), base.mapv(|x| x + 0.5));
+        let mask = Array1::from_shape_fn(n, |i| i != 2 * BLOCK);
+        let mut g = ArrayD::zeros(IxDyn(&[n]));
+        let mut go = |nl: &Array1<f64>, ol: &Array1<f64>, ad: &Array1<f64>, check: bool| {
+            clipped_surrogate(
+                dyn1(nl.view()),
+                dyn1(ol.view()),
+                dyn1(ad.view()),
+                Some(dyn1(mask.view())),
+                0.2,
+                check,
+                g.view_mut(),
+                Par::Rayon,
+            )
+        };
+        ad[7] = f64::NAN;
+        ol[2 * BLOCK] = f64::NEG_INFINITY; // masked out, still checked
+        let e = go(&nl, &ol, &ad, true).unwrap_err();
+        assert_eq!(
+            e,
+            CoreError::non_finite("old_log_prob", At::Flat(2 * BLOCK))
+        );
+        nl[n - 1] = f64::INFINITY;
+        let e = go(&nl, &ol, &ad, true).unwrap_err();
+        assert_eq!(e, CoreError::non_finite("new_log_prob", At::Flat(n - 1)));
+        // check_finite=False lets the NaN through to the loss.
+        assert!(go(&nl, &ol, &ad, false).unwrap().loss.is_nan());
+        // A log-ratio that overflows is not an input error.
+        let (mut nl, mut ol) = (base.clone(), base.clone());
+        nl[1] = 1e308;
+        ol[1] = -1e308;
+        let s = go(&nl, &ol, &base, true).unwrap();
+        assert_eq!(s.ratio_max, f64::INFINITY);
     }
 }

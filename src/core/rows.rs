@@ -16,11 +16,13 @@
 //! any truncated step lacks a next value; only then does the caller run the
 //! full validation, which names the first offending element.
 
+use super::fastmath;
 use super::float::Real;
 use super::par::{Par, PAR_MIN_WORK};
 use super::simd::{dispatch, finite_mark, Kernel};
-use super::timemajor::{split_cols, Steps};
-use ndarray::{ArrayViewMut2, Axis};
+use super::timemajor::{split_pair, Steps};
+use super::vtrace::{cap, VtraceParams};
+use ndarray::{ArrayView2, ArrayViewMut2, Axis};
 
 /// Streams per block are a multiple of this (a full vector of f64 lanes).
 const L: usize = 8;
@@ -73,66 +75,13 @@ pub(crate) fn try_run<F: Real>(
     par: Par,
 ) -> Option<Flags> {
     let (t, m) = steps.rewards.dim();
-    let flat = Flat {
-        m,
-        t,
-        r: steps.rewards.as_slice()?,
-        v: match (&steps.values, rule) {
-            (Some(v), Rule::Gae { .. }) => Some(v.as_slice()?),
-            _ => None,
-        },
-        nv: match &steps.next_values {
-            Some(v) => Some(v.as_slice()?),
-            None => None,
-        },
-        te: match &steps.terminated {
-            Some(v) => Some(v.as_slice()?),
-            None => None,
-        },
-        tr: match &steps.truncated {
-            Some(v) => Some(v.as_slice()?),
-            None => None,
-        },
-        boot: match &steps.bootstrap {
-            Some(v) => Some(v.as_slice()?),
-            None => None,
-        },
-    };
-    if matches!(rule, Rule::Gae { .. }) && flat.v.is_none() {
-        return None;
-    }
+    let flat = Flat::new(steps, matches!(rule, Rule::Gae { .. }))?;
     out_a.as_slice_mut()?;
     if let Some(b) = out_b.as_mut() {
         b.as_slice_mut()?;
     }
-    if t == 0 || m == 0 {
-        return Some(Flags::default());
-    }
-    // Column blocks of a multiple of 8 streams, one per thread when the work
-    // is large enough; streams are independent, so the split changes no bit.
-    // Blocks narrower than MIN_W streams lose more to the threads sharing
-    // every row than they gain (measured: (2048, 64) is faster on one thread).
-    let blocks = match par {
-        Par::Rayon if t * m >= PAR_MIN_WORK => rayon::current_num_threads()
-            .clamp(1, 64)
-            .min(m / MIN_W)
-            .max(1),
-        _ => 1,
-    };
-    let w = m.div_ceil(blocks).next_multiple_of(L).min(m.max(1));
-    let a_blocks = split_cols(out_a, w);
-    let b_blocks: Vec<Option<ArrayViewMut2<'_, F>>> = match out_b {
-        Some(b) => split_cols(b, w).into_iter().map(Some).collect(),
-        None => a_blocks.iter().map(|_| None).collect(),
-    };
-    let items: Vec<_> = a_blocks
-        .into_iter()
-        .zip(b_blocks)
-        .enumerate()
-        .map(|(i, (a, b))| (i * w, a, b))
-        .collect();
     let (te, tr) = (flat.te.is_some(), flat.tr.is_some());
-    let flags = par.map(items, |(m0, a, b)| {
+    Some(for_blocks(t, m, out_a, out_b, par, |m0, a, b| {
         let job = BlockJob {
             flat: &flat,
             rule,
@@ -152,11 +101,138 @@ pub(crate) fn try_run<F: Real>(
             (Rule::Gae { .. }, false, true) => dispatch(Spec::<_, true, false, true>(job)),
             (Rule::Gae { .. }, true, true) => dispatch(Spec::<_, true, true, true>(job)),
         }
-    });
-    Some(flags.into_iter().fold(Flags::default(), |x, y| Flags {
+    }))
+}
+
+/// V-trace targets into `vs` and pg advantages into `pg` (the rule of
+/// [`super::vtrace`]) when every array is C-contiguous; `None` when the
+/// layout needs the general loop. `Flags::non_finite` here means some
+/// `rewards`, `values`, `behaviour_log_prob` or `target_log_prob` element is
+/// not finite (outputs cannot tell: a capped ratio hides an infinite log-prob).
+pub(crate) fn try_vtrace<F: Real>(
+    steps: &Steps<'_, F>,
+    behaviour_log_prob: ArrayView2<'_, F>,
+    target_log_prob: ArrayView2<'_, F>,
+    p: VtraceParams,
+    mut vs: ArrayViewMut2<'_, F>,
+    mut pg: ArrayViewMut2<'_, F>,
+    par: Par,
+) -> Option<Flags> {
+    let (t, m) = steps.rewards.dim();
+    let flat = Flat::new(steps, true)?;
+    let (blp, tlp) = (behaviour_log_prob.to_slice()?, target_log_prob.to_slice()?);
+    vs.as_slice_mut()?;
+    pg.as_slice_mut()?;
+    let (te, tr) = (flat.te.is_some(), flat.tr.is_some());
+    Some(for_blocks(t, m, vs, Some(pg), par, |m0, a, b| {
+        let Some(b) = b else {
+            return Flags::default();
+        };
+        let job = VtraceJob {
+            flat: &flat,
+            blp,
+            tlp,
+            p,
+            m0,
+            vs: a,
+            pg: b,
+        };
+        match (te, tr) {
+            (false, false) => dispatch(VtraceSpec::<_, false, false>(job)),
+            (true, false) => dispatch(VtraceSpec::<_, true, false>(job)),
+            (false, true) => dispatch(VtraceSpec::<_, false, true>(job)),
+            (true, true) => dispatch(VtraceSpec::<_, true, true>(job)),
+        }
+    }))
+}
+
+impl<'s, F: Real> Flat<'s, F> {
+    /// Every input as a flat slice (`values` only when `with_values`, and
+    /// then required); `None` when some array is not C-contiguous.
+    fn new(steps: &Steps<'s, F>, with_values: bool) -> Option<Self> {
+        fn flat<'a, T>(
+            a: &Option<ndarray::ArrayView<'a, T, impl ndarray::Dimension>>,
+        ) -> Option<Option<&'a [T]>> {
+            match a {
+                Some(v) => Some(Some(v.to_slice()?)),
+                None => Some(None),
+            }
+        }
+        let (t, m) = steps.rewards.dim();
+        let v = if with_values {
+            Some(steps.values.as_ref()?.to_slice()?)
+        } else {
+            None
+        };
+        Some(Flat {
+            m,
+            t,
+            r: steps.rewards.to_slice()?,
+            v,
+            nv: flat(&steps.next_values)?,
+            te: flat(&steps.terminated)?,
+            tr: flat(&steps.truncated)?,
+            boot: flat(&steps.bootstrap)?,
+        })
+    }
+
+    /// What every row of the streams `[m0, m0 + w)` reads; `zero_boot` holds
+    /// `w` zeros when [`Flat::needs_zero_boot`].
+    fn block<'a>(&'a self, m0: usize, w: usize, zero_boot: &'a [F]) -> BlockIns<'a, F> {
+        let empty: &[F] = &[];
+        let no_flags: &[bool] = &[];
+        BlockIns {
+            m: self.m,
+            m0,
+            w,
+            t_len: self.t,
+            r: self.r,
+            vs: self.v.unwrap_or(empty),
+            nvs: self.nv.unwrap_or(empty),
+            boot: self.boot.unwrap_or(empty),
+            zero_boot,
+            tes: self.te.unwrap_or(no_flags),
+            trs: self.tr.unwrap_or(no_flags),
+        }
+    }
+
+    /// Whether the last row bootstraps from zeros (neither a bootstrap nor
+    /// next values given).
+    fn needs_zero_boot(&self) -> bool {
+        self.boot.is_none() && self.nv.is_none()
+    }
+}
+
+/// Cut the streams into column blocks of a multiple of 8 streams, one per
+/// thread when the work is large enough, and run `job(m0, out_a block,
+/// out_b block)` on each; streams are independent, so the split changes no
+/// bit. Blocks narrower than MIN_W streams lose more to the threads sharing
+/// every row than they gain (measured: (2048, 64) is faster on one thread).
+fn for_blocks<'o, F: Real>(
+    t: usize,
+    m: usize,
+    out_a: ArrayViewMut2<'o, F>,
+    out_b: Option<ArrayViewMut2<'o, F>>,
+    par: Par,
+    job: impl Fn(usize, ArrayViewMut2<'o, F>, Option<ArrayViewMut2<'o, F>>) -> Flags + Sync + Send,
+) -> Flags {
+    if t == 0 || m == 0 {
+        return Flags::default();
+    }
+    let blocks = match par {
+        Par::Rayon if t * m >= PAR_MIN_WORK => rayon::current_num_threads()
+            .clamp(1, 64)
+            .min(m / MIN_W)
+            .max(1),
+        _ => 1,
+    };
+    let w = m.div_ceil(blocks).next_multiple_of(L).min(m.max(1));
+    let items = split_pair(out_a, out_b, w);
+    let flags = par.map(items, |(m0, a, b)| job(m0, a, b));
+    flags.into_iter().fold(Flags::default(), |x, y| Flags {
         non_finite: x.non_finite | y.non_finite,
         truncated_without_next: x.truncated_without_next | y.truncated_without_next,
-    }))
+    })
 }
 
 /// The streams `[m0, m0 + ncols)` over all rows, bottom-up.
@@ -405,6 +481,25 @@ struct BlockIns<'s, F> {
     trs: &'s [bool],
 }
 
+impl<'s, F> BlockIns<'s, F> {
+    /// The value after the step whose row starts at `i` (`last`: the buffer's
+    /// last row), as that step sees it: next_values, the next row of values
+    /// (when the rule reads `values`), the bootstrap, or zeros.
+    #[inline(always)]
+    fn value_after(&self, i: usize, last: bool, values: bool) -> &'s [F] {
+        let (m, m0, w) = (self.m, self.m0, self.w);
+        if !self.nvs.is_empty() {
+            &self.nvs[i..i + w]
+        } else if values && !last {
+            &self.vs[i + m..i + m + w]
+        } else if !self.boot.is_empty() {
+            &self.boot[m0..m0 + w]
+        } else {
+            self.zero_boot
+        }
+    }
+}
+
 /// All rows of a block, bottom-up.
 #[inline(always)]
 fn rows_loop<F: Real, const GAE: bool, const TE: bool, const TR: bool>(
@@ -428,16 +523,7 @@ fn rows_loop<F: Real, const GAE: bool, const TE: bool, const TR: bool>(
         };
         let last = t + 1 == x.t_len;
         let i = t * m + m0;
-        // The value after step t: next_values, the next row, or the bootstrap.
-        let vn: &[F] = if !x.nvs.is_empty() {
-            &x.nvs[i..i + w]
-        } else if GAE && !last {
-            &x.vs[i + m..i + m + w]
-        } else if !x.boot.is_empty() {
-            &x.boot[m0..m0 + w]
-        } else {
-            x.zero_boot
-        };
+        let vn = x.value_after(i, last, GAE);
         let ri = RowIn {
             r: &x.r[i..i + w],
             v: if GAE { &x.vs[i..i + w] } else { no_v },
@@ -472,35 +558,10 @@ impl<F: Real, const GAE: bool, const TE: bool, const TR: bool> Kernel
             Rule::Returns { gamma } => (gamma, 0.0),
             Rule::Gae { gamma, lam } => (gamma, gamma * lam),
         };
-        let (m, t_len) = (flat.m, flat.t);
-        let w = a.ncols();
-        let empty: &[F] = &[];
-        let no_flags: &[bool] = &[];
-        let (vs, nvs, boot) = (
-            flat.v.unwrap_or(empty),
-            flat.nv.unwrap_or(empty),
-            flat.boot.unwrap_or(empty),
-        );
-        let (tes, trs) = (flat.te.unwrap_or(no_flags), flat.tr.unwrap_or(no_flags));
+        let (m, w) = (flat.m, a.ncols());
         // Zero bootstraps when none is given.
-        let zero_boot: Vec<F> = if boot.is_empty() && nvs.is_empty() {
-            vec![F::from_f64(0.0); w]
-        } else {
-            Vec::new()
-        };
-        let ins = BlockIns {
-            m,
-            m0,
-            w,
-            t_len,
-            r: flat.r,
-            vs,
-            nvs,
-            boot,
-            zero_boot: &zero_boot,
-            tes,
-            trs,
-        };
+        let zero_boot = vec![F::from_f64(0.0); if flat.needs_zero_boot() { w } else { 0 }];
+        let ins = flat.block(m0, w, &zero_boot);
         // Exactly 8 streams (then the block is the whole, contiguous buffer):
         // one vector per row, carries in a register.
         if w == L && m == L {
@@ -513,5 +574,157 @@ impl<F: Real, const GAE: bool, const TE: bool, const TR: bool> Kernel
         let mut rows_b = b.as_mut().map(|b| RowsMut::new(b.view_mut()));
         let mut carry = vec![0.0f64; w];
         rows_loop::<F, GAE, TE, TR>(gamma, gl, &ins, &mut carry, &mut rows_a, &mut rows_b)
+    }
+}
+
+/// The V-trace streams `[m0, m0 + ncols)` over all rows, bottom-up.
+struct VtraceJob<'j, 's, 'o, F> {
+    flat: &'j Flat<'s, F>,
+    blp: &'s [F],
+    tlp: &'s [F],
+    p: VtraceParams,
+    m0: usize,
+    vs: ArrayViewMut2<'o, F>,
+    pg: ArrayViewMut2<'o, F>,
+}
+
+/// A [`VtraceJob`] with the presence of the terminated (`TE`) and truncated
+/// (`TR`) flags fixed at compile time.
+struct VtraceSpec<'j, 's, 'o, F, const TE: bool, const TR: bool>(VtraceJob<'j, 's, 'o, F>);
+
+/// The inputs of one V-trace row of a block (all of its width).
+struct VtraceRowIn<'s, F> {
+    blp: &'s [F],
+    tlp: &'s [F],
+    r: &'s [F],
+    v: &'s [F],
+    /// The value after the step (see [`BlockIns::value_after`]).
+    vn: &'s [F],
+    /// `values` of the next row (unused on the last row).
+    v_below: &'s [F],
+    te: &'s [bool],
+    tr: &'s [bool],
+    last: bool,
+}
+
+/// One V-trace row: `vs` into `ovs`, `pg` into `opg`, carries (`vs - V`,
+/// one per stream) updated, with the operations of the tile loop's rule in
+/// the same order: plain loops, the ratios first (parked in `ratio`), then
+/// the rest of the step. Returns `(some rewards / values / log-prob
+/// input not finite, some step truncated)`.
+#[allow(clippy::too_many_arguments)]
+#[inline(always)]
+fn vtrace_row<F: Real, const TE: bool, const TR: bool>(
+    p: &VtraceParams,
+    x: &VtraceRowIn<'_, F>,
+    ratio: &mut [f64],
+    carry: &mut [f64],
+    ovs: &mut [F],
+    opg: &mut [F],
+) -> (bool, bool) {
+    let VtraceParams {
+        gamma,
+        lam,
+        rho_bar,
+        c_bar,
+    } = *p;
+    let w = carry.len();
+    let (blp, tlp, ratio) = (&x.blp[..w], &x.tlp[..w], &mut ratio[..w]);
+    let (r, v, vn, v_below) = (&x.r[..w], &x.v[..w], &x.vn[..w], &x.v_below[..w]);
+    let te = &x.te[..if TE { w } else { 0 }];
+    let tr = &x.tr[..if TR { w } else { 0 }];
+    let (ovs, opg) = (&mut ovs[..w], &mut opg[..w]);
+    let last = x.last;
+    // Non-finite inputs as the OR of the bits of their finite marks (0 for
+    // finite, NaN otherwise): an integer reduction keeps both loops
+    // vectorised where a `bool` one does not.
+    let (mut bad, mut any_tr) = (0u64, false);
+    for j in 0..w {
+        let (t, b) = (tlp[j].to_f64(), blp[j].to_f64());
+        let q = t - b;
+        // Not finite exactly when t or b is not (or, for f64, on overflow:
+        // then the caller's full check finds nothing and the results stand).
+        bad |= finite_mark(q).to_bits();
+        ratio[j] = q;
+    }
+    // The exponentials in a loop of their own over `f64`: with the
+    // conversions and marks above in it, LLVM leaves it scalar.
+    for q in ratio.iter_mut() {
+        *q = fastmath::exp(*q);
+    }
+    for j in 0..w {
+        let te_j = TE && te[j];
+        let tr_j = TR && tr[j];
+        any_tr |= tr_j;
+        let q = ratio[j];
+        let rho = cap(q, rho_bar);
+        let cs = lam * cap(q, c_bar);
+        let end = te_j | tr_j;
+        let vp = if te_j { 0.0 } else { vn[j].to_f64() };
+        let (rj, vj, below) = (r[j].to_f64(), v[j].to_f64(), carry[j]);
+        bad |= finite_mark(rj).to_bits() | finite_mark(vj).to_bits();
+        // vs_{t+1} inside an episode, V'_t at an end or the last row.
+        let vnext = if end | last {
+            vp
+        } else {
+            v_below[j].to_f64() + below
+        };
+        let pg = rho * (rj + gamma * vnext - vj);
+        let d = rho * (rj + gamma * vp - vj);
+        let a = if end { d } else { d + gamma * cs * below };
+        carry[j] = a;
+        ovs[j] = F::from_f64(a + vj);
+        opg[j] = F::from_f64(pg);
+    }
+    (bad != 0, any_tr)
+}
+
+impl<F: Real, const TE: bool, const TR: bool> Kernel for VtraceSpec<'_, '_, '_, F, TE, TR> {
+    type Output = Flags;
+
+    #[inline(always)]
+    fn run<const FMA: bool>(self) -> Flags {
+        // FMA is not used: the general loop rounds every product separately.
+        let VtraceJob {
+            flat,
+            blp,
+            tlp,
+            p,
+            m0,
+            vs,
+            pg,
+        } = self.0;
+        let (m, w) = (flat.m, vs.ncols());
+        let zero_boot = vec![F::from_f64(0.0); if flat.needs_zero_boot() { w } else { 0 }];
+        let x = flat.block(m0, w, &zero_boot);
+        let no_flags: &[bool] = &[];
+        let mut rows_a = RowsMut::new(vs);
+        let mut rows_b = RowsMut::new(pg);
+        let mut carry = vec![0.0f64; w];
+        let mut ratio = vec![0.0f64; w];
+        let mut flags = Flags::default();
+        for t in (0..x.t_len).rev() {
+            let (Some(ovs), Some(opg)) = (rows_a.next_back(), rows_b.next_back()) else {
+                break;
+            };
+            let last = t + 1 == x.t_len;
+            let i = t * m + m0;
+            let vn = x.value_after(i, last, true);
+            let ri = VtraceRowIn {
+                blp: &blp[i..i + w],
+                tlp: &tlp[i..i + w],
+                r: &x.r[i..i + w],
+                v: &x.vs[i..i + w],
+                vn,
+                v_below: if last { vn } else { &x.vs[i + m..i + m + w] },
+                te: if TE { &x.tes[i..i + w] } else { no_flags },
+                tr: if TR { &x.trs[i..i + w] } else { no_flags },
+                last,
+            };
+            let (bad, tr) = vtrace_row::<F, TE, TR>(&p, &ri, &mut ratio, &mut carry, ovs, opg);
+            flags.non_finite |= bad;
+            flags.truncated_without_next |= tr && x.nvs.is_empty();
+        }
+        flags
     }
 }

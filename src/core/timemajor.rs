@@ -212,7 +212,7 @@ pub fn discounted_returns<F: Real>(
     par: Par,
 ) -> CoreResult<()> {
     check_unit("gamma", gamma)?;
-    if let Some(()) = direct(steps, false, check_finite, par, |s| {
+    if let Some(()) = direct(steps, false, check_finite, &[], par, |s| {
         check_out("out", out.shape(), s.rewards.shape())?;
         Ok(rows::try_run(
             s,
@@ -269,7 +269,7 @@ pub fn gae<F: Real>(
             ));
         }
     }
-    let done = direct(steps, true, check_finite, par, |s| {
+    let done = direct(steps, true, check_finite, &[], par, |s| {
         check_out("out[0]", adv.shape(), s.rewards.shape())?;
         check_out("out[1]", ret.shape(), s.rewards.shape())?;
         Ok(rows::try_run(
@@ -302,12 +302,14 @@ pub fn gae<F: Real>(
 
 /// The fast path of [`rows`] when the layout allows: the layout checks, the
 /// cheap data checks, then `kernel`; the full validation runs only when the
-/// kernel saw something it must explain. `Ok(None)`: not taken (nothing was
-/// written), run the general loop.
-fn direct<F: Real>(
+/// kernel saw something it must explain (then the rule's own per-step inputs
+/// `extra` are checked for finiteness after the steps, by name). `Ok(None)`:
+/// not taken (nothing was written), run the general loop.
+pub(crate) fn direct<F: Real>(
     steps: &Steps<'_, F>,
     need_values: bool,
     check_finite: bool,
+    extra: &[(&'static str, &ArrayView2<'_, F>)],
     par: Par,
     kernel: impl FnOnce(&Steps<'_, F>) -> CoreResult<Option<rows::Flags>>,
 ) -> CoreResult<Option<()>> {
@@ -333,6 +335,11 @@ fn direct<F: Real>(
     };
     if flags.truncated_without_next || (check_finite && flags.non_finite) {
         steps.validate_data(need_values, check_finite, par)?;
+        if check_finite {
+            for &(name, a) in extra {
+                check_finite_2d(name, a, par)?;
+            }
+        }
     }
     Ok(Some(()))
 }
@@ -439,24 +446,35 @@ pub(crate) fn run<F: Real, R: StepRule>(
         return;
     }
     let w = block_width(t, m, par);
-    let a_blocks = split_cols(out_a, w);
-    let b_blocks: Vec<Option<ArrayViewMut2<'_, F>>> = match out_b {
-        None => (0..a_blocks.len()).map(|_| None).collect(),
-        Some(b) => split_cols(b, w).into_iter().map(Some).collect(),
-    };
-    let items: Vec<_> = a_blocks
-        .into_iter()
-        .zip(b_blocks)
-        .enumerate()
-        .map(|(i, (a, b))| (i * w, a, b))
-        .collect();
+    let items = split_pair(out_a, out_b, w);
     par.for_each(items, |(m0, a, b)| {
         run_block(steps, extra, rule, stores, m0, a, b)
     });
 }
 
+/// Cut `a` (and `b`, of the same shape) into column blocks of width `w`:
+/// `(first stream, block of a, block of b)`.
+#[allow(clippy::type_complexity)]
+pub(crate) fn split_pair<'o, F>(
+    a: ArrayViewMut2<'o, F>,
+    b: Option<ArrayViewMut2<'o, F>>,
+    w: usize,
+) -> Vec<(usize, ArrayViewMut2<'o, F>, Option<ArrayViewMut2<'o, F>>)> {
+    let a_blocks = split_cols(a, w);
+    let b_blocks: Vec<Option<ArrayViewMut2<'o, F>>> = match b {
+        None => (0..a_blocks.len()).map(|_| None).collect(),
+        Some(b) => split_cols(b, w).into_iter().map(Some).collect(),
+    };
+    a_blocks
+        .into_iter()
+        .zip(b_blocks)
+        .enumerate()
+        .map(|(i, (a, b))| (i * w, a, b))
+        .collect()
+}
+
 /// Cut a `[T, M]` view into column blocks of width `w` (the last may be narrower).
-pub(crate) fn split_cols<F>(mut v: ArrayViewMut2<'_, F>, w: usize) -> Vec<ArrayViewMut2<'_, F>> {
+fn split_cols<F>(mut v: ArrayViewMut2<'_, F>, w: usize) -> Vec<ArrayViewMut2<'_, F>> {
     let mut out = Vec::with_capacity(v.ncols().div_ceil(w.max(1)));
     while v.ncols() > w {
         let (a, b) = v.split_at(Axis(1), w);

@@ -22,6 +22,7 @@ use super::error::{check_unit, CoreError, CoreResult};
 use super::fastmath;
 use super::float::Real;
 use super::par::Par;
+use super::rows;
 use super::timemajor::{self, Row, StepRule, Steps, Store};
 use ndarray::{ArrayView2, ArrayViewMut2};
 
@@ -45,7 +46,7 @@ struct VtraceRule {
 /// `min(bar, x)` that lets a NaN `x` through (so `check_finite=False`
 /// propagates NaN instead of hiding it behind the bar).
 #[inline(always)]
-fn cap(x: f64, bar: f64) -> f64 {
+pub(crate) fn cap(x: f64, bar: f64) -> f64 {
     if x > bar {
         bar
     } else {
@@ -137,6 +138,29 @@ pub fn vtrace<F: Real>(
                 "per-step arrays must have the shape of rewards",
             ));
         }
+    }
+    let (mut vs_out, mut pg_out) = (vs_out, pg_out);
+    // C-contiguous buffers: one pass over the caller's arrays (rows.rs);
+    // same bits as the tile loop below.
+    let logp = [
+        ("behaviour_log_prob", &behaviour_log_prob),
+        ("target_log_prob", &target_log_prob),
+    ];
+    let done = timemajor::direct(steps, true, check_finite, &logp, par, |s| {
+        timemajor::check_out("out[0]", vs_out.shape(), shape)?;
+        timemajor::check_out("out[1]", pg_out.shape(), shape)?;
+        Ok(rows::try_vtrace(
+            s,
+            behaviour_log_prob.view(),
+            target_log_prob.view(),
+            p,
+            vs_out.view_mut(),
+            pg_out.view_mut(),
+            par,
+        ))
+    })?;
+    if done.is_some() {
+        return Ok(());
     }
     steps.validate(true, check_finite, par)?;
     if check_finite {
@@ -523,5 +547,204 @@ mod tests {
         )
         .unwrap_err();
         assert!(matches!(e, CoreError::Input { arg: "values", .. }));
+    }
+
+    /// A Fortran-ordered copy (the general tile loop reads it).
+    fn fortran<T: Clone + Default>(a: &Array2<T>) -> Array2<T> {
+        let mut f = Array2::from_elem(a.raw_dim().f(), T::default());
+        f.assign(a);
+        f
+    }
+
+    /// The contiguous fast path (rows.rs) and the general tile loop (taken
+    /// for Fortran-ordered copies of the same data) give the same bits: both
+    /// storage types, every optional input, truncation levels that bind and
+    /// that do not, widths that are not a multiple of 8, 1 or N threads.
+    #[test]
+    fn fast_path_equals_tile_loop_bit_for_bit() {
+        fn check<F: Real + Default>(d: &Data, p: VtraceParams, nv_mode: usize, flags: usize) {
+            let cv = |a: &Array2<f64>| a.mapv(F::from_f64);
+            let (r, v, nv, blp, tlp) = (cv(&d.r), cv(&d.v), cv(&d.nv), cv(&d.blp), cv(&d.tlp));
+            let boot = d.boot.mapv(F::from_f64);
+            let (rf, vf, nvf, blpf, tlpf) = (
+                fortran(&r),
+                fortran(&v),
+                fortran(&nv),
+                fortran(&blp),
+                fortran(&tlp),
+            );
+            let (tef, trf) = (fortran(&d.term), fortran(&d.trunc));
+            // nv_mode: 0 next_values (truncations allowed), 1 bootstrap, 2 neither.
+            let with_te = flags & 1 != 0;
+            let with_tr = flags & 2 != 0 && nv_mode == 0;
+            let make = |r, v, nv, te, tr| Steps {
+                values: Some(v),
+                next_values: if nv_mode == 0 { Some(nv) } else { None },
+                terminated: if with_te { Some(te) } else { None },
+                truncated: if with_tr { Some(tr) } else { None },
+                bootstrap: if nv_mode == 1 {
+                    Some(boot.view())
+                } else {
+                    None
+                },
+                ..Steps::new(r)
+            };
+            let c = make(r.view(), v.view(), nv.view(), d.term.view(), d.trunc.view());
+            let f = make(rf.view(), vf.view(), nvf.view(), tef.view(), trf.view());
+            let dim = d.r.raw_dim();
+            for par in [Par::Seq, Par::Rayon] {
+                let (mut vc, mut pc) = (Array2::<F>::default(dim), Array2::<F>::default(dim));
+                let mut vfo = Array2::<F>::default(dim.f());
+                let mut pfo = Array2::<F>::default(dim.f());
+                vtrace(
+                    &c,
+                    blp.view(),
+                    tlp.view(),
+                    p,
+                    true,
+                    vc.view_mut(),
+                    pc.view_mut(),
+                    par,
+                )
+                .unwrap();
+                vtrace(
+                    &f,
+                    blpf.view(),
+                    tlpf.view(),
+                    p,
+                    true,
+                    vfo.view_mut(),
+                    pfo.view_mut(),
+                    par,
+                )
+                .unwrap();
+                let same = |a: &Array2<F>, b: &Array2<F>| {
+                    a.iter()
+                        .zip(b.iter())
+                        .all(|(x, y)| x.to_f64().to_bits() == y.to_f64().to_bits())
+                };
+                let what = format!(
+                    "{} {:?} nv_mode={nv_mode} flags={flags} {par:?}",
+                    F::NAME,
+                    dim
+                );
+                assert!(same(&vc, &vfo), "vs {what}");
+                assert!(same(&pc, &pfo), "pg {what}");
+                // The fast path runs the widest vector unit; the tile loop on
+                // the baseline one still gives its bits.
+                crate::core::fastmath::set_wide_off(true);
+                vtrace(
+                    &f,
+                    blpf.view(),
+                    tlpf.view(),
+                    p,
+                    true,
+                    vfo.view_mut(),
+                    pfo.view_mut(),
+                    par,
+                )
+                .unwrap();
+                crate::core::fastmath::set_wide_off(false);
+                assert!(same(&vc, &vfo), "vs baseline {what}");
+                assert!(same(&pc, &pfo), "pg baseline {what}");
+            }
+        }
+        let mut seed = 21u64;
+        let ps = [
+            VtraceParams {
+                gamma: 0.97,
+                lam: 0.9,
+                rho_bar: 1.0,
+                c_bar: 0.8,
+            },
+            VtraceParams {
+                gamma: 0.99,
+                lam: 1.0,
+                rho_bar: f64::INFINITY,
+                c_bar: f64::INFINITY,
+            },
+        ];
+        for &(t, m) in &[(1usize, 1usize), (7, 5), (64, 8), (37, 19), (300, 333)] {
+            let d = data(t, m, &mut seed);
+            for p in ps {
+                for nv_mode in 0..3 {
+                    for flags in 0..4 {
+                        check::<f64>(&d, p, nv_mode, flags);
+                        check::<f32>(&d, p, nv_mode, flags);
+                    }
+                }
+            }
+        }
+    }
+
+    /// The fast path checks after the fact, and reports the same first error
+    /// as the up-front checks of the general loop (steps first, then the
+    /// log-probabilities), whatever the layout.
+    #[test]
+    fn fast_path_reports_the_same_error_as_tile_loop() {
+        let mut seed = 13u64;
+        let p = VtraceParams {
+            gamma: 0.9,
+            lam: 1.0,
+            rho_bar: 1.0,
+            c_bar: 1.0,
+        };
+        let base = data(40, 20, &mut seed);
+        let run = |d: &Data, fortran_order: bool, with_tr: bool| {
+            let pick = |a: &Array2<f64>| if fortran_order { fortran(a) } else { a.clone() };
+            let (r, v, blp, tlp) = (pick(&d.r), pick(&d.v), pick(&d.blp), pick(&d.tlp));
+            let steps = Steps {
+                values: Some(v.view()),
+                terminated: Some(d.term.view()),
+                truncated: if with_tr { Some(d.trunc.view()) } else { None },
+                ..Steps::new(r.view())
+            };
+            let mut vs = Array2::zeros((40, 20));
+            let mut pg = Array2::zeros((40, 20));
+            vtrace(
+                &steps,
+                blp.view(),
+                tlp.view(),
+                p,
+                true,
+                vs.view_mut(),
+                pg.view_mut(),
+                Par::Seq,
+            )
+            .unwrap_err()
+        };
+        // A truncation without next_values.
+        let e = run(&base, false, true);
+        assert_eq!(e, run(&base, true, true));
+        assert!(matches!(
+            e,
+            CoreError::Input {
+                arg: "truncated",
+                ..
+            }
+        ));
+        // One bad value in each input, then two (the earlier input wins).
+        let mut cases: Vec<(Data, &str)> = Vec::new();
+        for (k, name) in ["rewards", "values", "behaviour_log_prob", "target_log_prob"]
+            .into_iter()
+            .enumerate()
+        {
+            let mut d = data(40, 20, &mut seed);
+            let bad = [f64::NAN, f64::INFINITY, f64::NEG_INFINITY][k % 3];
+            [&mut d.r, &mut d.v, &mut d.blp, &mut d.tlp][k][[3 + 7 * k, 19 - k]] = bad;
+            cases.push((d, name));
+        }
+        let mut d = data(40, 20, &mut seed);
+        d.tlp[[0, 0]] = f64::NAN;
+        d.v[[39, 19]] = f64::INFINITY;
+        cases.push((d, "values"));
+        for (d, name) in &cases {
+            let e = run(d, false, false);
+            assert_eq!(e, run(d, true, false));
+            assert!(
+                matches!(e, CoreError::Input { arg, .. } if arg == *name),
+                "{e:?}"
+            );
+        }
     }
 }
