@@ -443,22 +443,39 @@ mod tests {
         .unwrap();
         assert_eq!(a, c);
         assert_eq!(b, e);
-        // The AVX2 path (when the CPU has it) and the baseline path agree bitwise.
-        crate::core::fastmath::set_wide_off(true);
-        vtrace(
-            &steps,
-            b32.view(),
-            t32.view(),
-            p,
-            true,
-            c.view_mut(),
-            e.view_mut(),
-            Par::Seq,
-        )
-        .unwrap();
-        crate::core::fastmath::set_wide_off(false);
-        assert_eq!(a, c);
-        assert_eq!(b, e);
+        // The tile loop (taken for Fortran-ordered inputs; the C-ordered ones
+        // above take rows.rs) agrees bitwise, on its AVX2 path (when the CPU
+        // has it) and on its baseline path.
+        let fortran = |x: &Array2<f32>| {
+            let mut f = Array2::<f32>::zeros(x.raw_dim().f());
+            f.assign(x);
+            f
+        };
+        let (rf, vf, bf, tf) = (fortran(&r32), fortran(&v32), fortran(&b32), fortran(&t32));
+        let steps_f = Steps {
+            values: Some(vf.view()),
+            terminated: Some(d.term.view()),
+            ..Steps::new(rf.view())
+        };
+        for wide_off in [false, true] {
+            crate::core::fastmath::set_wide_off(wide_off);
+            c.fill(0.0);
+            e.fill(0.0);
+            let res = vtrace(
+                &steps_f,
+                bf.view(),
+                tf.view(),
+                p,
+                true,
+                c.view_mut(),
+                e.view_mut(),
+                Par::Seq,
+            );
+            crate::core::fastmath::set_wide_off(false);
+            res.unwrap();
+            assert_eq!(a, c, "wide_off={wide_off}");
+            assert_eq!(b, e, "wide_off={wide_off}");
+        }
     }
 
     #[test]
