@@ -40,7 +40,7 @@ const INV_FACT: [f64; 14] = [
     1.605_904_383_682_161_3e-10,
 ];
 
-use crate::core::simd::{isa, madd, Isa};
+use crate::core::simd::{isa, madd, F64x8, Isa};
 
 /// `exp(x)`; NaN stays NaN, results below 2^-1022 are 0.
 #[inline(always)]
@@ -160,12 +160,38 @@ multiversion! {
     }
 }
 
+/// `exp` of eight lanes: the same bits as [`exp_inplace`] run with the same
+/// `FMA` (so inside a [`crate::core::simd::dispatch`] kernel, as there).
+#[inline(always)]
+pub(crate) fn exp_x8<const FMA: bool>(x: F64x8) -> F64x8 {
+    let mut o = [0.0; 8];
+    for (o, &v) in o.iter_mut().zip(&x.0) {
+        *o = exp1::<FMA>(v);
+    }
+    F64x8(o)
+}
+
+/// `ln` of eight lanes, each positive, normal and finite (see [`ln_normal`]):
+/// the same bits as [`ln_inplace`] run with the same `FMA`.
+#[inline(always)]
+pub(crate) fn ln_normal_x8<const FMA: bool>(x: F64x8) -> F64x8 {
+    let mut o = [0.0; 8];
+    for (o, &v) in o.iter_mut().zip(&x.0) {
+        *o = ln1::<FMA>(v);
+    }
+    F64x8(o)
+}
+
+/// Whether [`ln_normal_x8`] is exact for `x`: positive, normal and finite.
+#[inline(always)]
+pub(crate) fn ln_normal(x: f64) -> bool {
+    (f64::MIN_POSITIVE..f64::INFINITY).contains(&x)
+}
+
 /// `x[i] = ln(x[i])` in place, exact IEEE semantics for 0, negatives, inf,
 /// NaN and subnormals.
 pub fn ln_inplace(x: &mut [f64]) {
-    let special = x.iter().fold(false, |a, &v| {
-        a | !(f64::MIN_POSITIVE..f64::INFINITY).contains(&v)
-    });
+    let special = x.iter().fold(false, |a, &v| a | !ln_normal(v));
     if special {
         // Rare: take the standard library for everything (same results where
         // both are defined, to the last ulp or so).
@@ -306,6 +332,49 @@ mod tests {
         assert_eq!(sp[2], f64::INFINITY);
         assert_eq!(sp[4], 5e-324f64.ln());
         assert_eq!(sp[5], 3f64.ln());
+    }
+
+    /// The eight-lane forms inside a dispatched kernel give the bits of the
+    /// slice forms (which dispatch the same way).
+    #[test]
+    fn lane_forms_match_slice_forms() {
+        use crate::core::simd::{dispatch, Kernel};
+        struct Lanes<'a>(&'a [f64]);
+        impl Kernel for Lanes<'_> {
+            type Output = (Vec<f64>, Vec<f64>);
+            #[inline(always)]
+            fn run<const FMA: bool>(self) -> Self::Output {
+                let (mut e, mut l) = (Vec::new(), Vec::new());
+                for c in self.0.chunks_exact(8) {
+                    let x = F64x8(c.try_into().expect("8 lanes"));
+                    e.extend(exp_x8::<FMA>(x).0);
+                    let mut y = [0.0; 8];
+                    for (y, &v) in y.iter_mut().zip(&x.0) {
+                        *y = v.abs() + 1.0;
+                    }
+                    l.extend(ln_normal_x8::<FMA>(F64x8(y)).0);
+                }
+                (e, l)
+            }
+        }
+        let xs: Vec<f64> = (0..8000)
+            .map(|i| -750.0 + 1460.0 * i as f64 / 7999.0)
+            .chain([0.0, -0.0, -1e30, 1e30, f64::NAN, -1e-300, 0.5, -0.25])
+            .collect();
+        let (e, l) = dispatch(Lanes(&xs));
+        let mut want_e = xs.clone();
+        exp_inplace(&mut want_e);
+        let mut want_l: Vec<f64> = xs.iter().map(|v| v.abs() + 1.0).collect();
+        // The first 8000 are all normal, so the slice form keeps its own ln.
+        ln_inplace(&mut want_l[..8000]);
+        for i in 0..xs.len() {
+            assert_eq!(e[i].to_bits(), want_e[i].to_bits(), "exp({})", xs[i]);
+            if i < 8000 {
+                assert_eq!(l[i].to_bits(), want_l[i].to_bits(), "ln({})", xs[i]);
+            }
+        }
+        assert!(ln_normal(1.0) && !ln_normal(0.0) && !ln_normal(f64::INFINITY));
+        assert!(!ln_normal(f64::NAN) && !ln_normal(1e-310) && ln_normal(f64::MAX));
     }
 
     #[test]
