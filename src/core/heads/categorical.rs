@@ -415,19 +415,25 @@ impl<F: Real> Kernel for LpEnt<'_, F> {
                 &pad
             };
             let (m, s, t, chk) = lp_ent_group::<FMA, F>(src, k, &mut tile);
-            let ok = (0..rows).all(|q| !(self.check && chk.0[q].is_nan()) && ln_normal(s.0[q]));
-            if !ok {
+            // Padded lanes hold zero logits: they never fail, so all eight
+            // lanes are checked and computed, branch-free.
+            let bad = (s.0.iter().zip(&chk.0)).fold(false, |b, (&s, &c)| {
+                b | !ln_normal(s) | (self.check & c.is_nan())
+            });
+            if bad {
                 return None;
             }
             let lns = ln_normal_x8::<FMA>(s).0;
-            for q in 0..rows {
-                h[r0 + q] = lns[q] - t.0[q] / s.0[q];
+            let mut hv = [0.0; 8];
+            for (((h, &l), &t), &s) in hv.iter_mut().zip(&lns).zip(&t.0).zip(&s.0) {
+                *h = l - t / s;
             }
+            h[r0..r0 + rows].copy_from_slice(&hv[..rows]);
             if let Some(act) = self.act {
-                for q in 0..rows {
-                    let a = act[r0 + q];
+                let out = lp[r0..r0 + rows].iter_mut().zip(&act[r0..r0 + rows]);
+                for (q, (o, &a)) in out.enumerate() {
                     let z = tile.get(usize::try_from(a).ok()?)?.0[q] - m.0[q];
-                    lp[r0 + q] = z - lns[q];
+                    *o = z - lns[q];
                 }
             }
         }
