@@ -17,7 +17,7 @@
 //! size (`+-1e30`) give finite results: only differences to the row maximum
 //! are exponentiated.
 
-use super::math::{exp_to, exp_x8, ln_inplace, ln_normal, ln_normal_x8, simd};
+use super::math::{exp_to, exp_x8, ln_inplace, ln_normal, ln_normal_x8};
 use super::rng::Stream;
 use super::{
     any_nan, batch_shape, broadcast, first_error, gather_t, row_starts, same_shape, scatter_col,
@@ -26,7 +26,7 @@ use super::{
 use crate::core::error::{CoreError, CoreResult};
 use crate::core::float::Real;
 use crate::core::par::Par;
-use crate::core::simd::{dispatch, F64x8, Kernel};
+use crate::core::simd::{dispatch, wide, F64x8, Kernel};
 use ndarray::{ArrayView2, ArrayViewD, ArrayViewMutD, Ix1, Ix2};
 
 /// An output argument: its public name (for shape errors) and its view.
@@ -333,7 +333,7 @@ impl<F: Real> Block<'_, F> {
                 return Ok(());
             }
         }
-        simd(
+        wide(
             #[inline(always)]
             || self.run(pick, check),
         )
@@ -642,7 +642,7 @@ pub fn categorical_kl<F: Real>(
         .collect();
     let check = p.check_finite;
     let results = layout.par(par).map(items, |(row0, xp, xq, mk, o)| {
-        simd(
+        wide(
             #[inline(always)]
             || {
                 let mut gp = gather(&xp, mk.as_ref(), check);

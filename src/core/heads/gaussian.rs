@@ -19,7 +19,7 @@
 //! log-Jacobian of the squash.
 
 use super::categorical::Out;
-use super::math::{exp_inplace, exp_to, half_tanh_p1, log1m_tanh2, simd, HALF_LN_2PI};
+use super::math::{exp_inplace, exp_to, half_tanh_p1, log1m_tanh2, HALF_LN_2PI};
 use super::rng::Stream;
 use super::squashed::Bounds;
 use super::{
@@ -31,6 +31,7 @@ use crate::core::error::{CoreError, CoreResult};
 use crate::core::finite::all_finite;
 use crate::core::float::Real;
 use crate::core::par::Par;
+use crate::core::simd::wide;
 use ndarray::{ArrayView2, ArrayViewD, ArrayViewMutD, Ix1};
 
 /// The log standard deviation of a Gaussian head.
@@ -306,7 +307,7 @@ pub(crate) fn run<F: Real>(
         entropy_const,
     };
     let results = layout.par(par).map(items, |b| {
-        simd(
+        wide(
             #[inline(always)]
             || ctx.block(b),
         )

@@ -2,8 +2,9 @@
 //! vectorise: `exp` and `ln` without calls into libm per element.
 //!
 //! Both are accurate to about one ulp over their whole domain (tested against
-//! the standard library below). On x86-64 CPUs with AVX2 and FMA the loops are
-//! compiled a second time with those features and picked at run time, so one
+//! the standard library below). The slice forms are [`Kernel`]s run through
+//! [`dispatch`] (fused multiply-adds on the AVX2 / AVX-512 builds); the
+//! eight-lane forms take the `FMA` of the kernel they are inlined into. So one
 //! machine always runs the same instructions (results never depend on the
 //! thread count, only, in the last bit, on the CPU).
 
@@ -40,7 +41,7 @@ const INV_FACT: [f64; 14] = [
     1.605_904_383_682_161_3e-10,
 ];
 
-use crate::core::simd::{isa, madd, F64x8, Isa};
+use crate::core::simd::{dispatch, madd, F64x8, Kernel};
 
 /// `exp(x)`; NaN stays NaN, results below 2^-1022 are 0.
 #[inline(always)]
@@ -101,63 +102,38 @@ fn ln1<const FMA: bool>(x: f64) -> f64 {
     madd::<FMA>(k, LN2_HI, (a - hfsq) + f)
 }
 
-/// Define `pub fn $name(args)` whose body (generic over `const FMA: bool`) is
-/// compiled three times: baseline x86-64 / other targets, AVX2 + FMA, and
-/// AVX-512; the widest one this CPU has runs.
-macro_rules! multiversion {
-    ($(#[$m:meta])* fn $name:ident($($a:ident: $t:ty),*) $body:block) => {
-        $(#[$m])*
-        pub fn $name($($a: $t),*) {
-            #[inline(always)]
-            fn imp<const FMA: bool>($($a: $t),*) $body
-            #[cfg(target_arch = "x86_64")]
-            {
-                #[target_feature(enable = "avx2,fma")]
-                fn avx2($($a: $t),*) {
-                    imp::<true>($($a),*)
-                }
-                #[target_feature(enable = "avx512f,avx2,fma")]
-                fn avx512($($a: $t),*) {
-                    imp::<true>($($a),*)
-                }
-                match isa() {
-                    // SAFETY: `isa()` found these features on this CPU.
-                    Isa::Avx512 => return unsafe { avx512($($a),*) },
-                    // SAFETY: as above.
-                    Isa::Avx2 => return unsafe { avx2($($a),*) },
-                    Isa::Base => {}
-                }
+/// `x[i] = exp(x[i])` (`LN = false`) or `ln(x[i])` of positive normal
+/// finite values (`LN = true`), in place.
+struct InPlace<'a, const LN: bool>(&'a mut [f64]);
+
+impl<const LN: bool> Kernel for InPlace<'_, LN> {
+    type Output = ();
+    #[inline(always)]
+    fn run<const FMA: bool>(self) {
+        for v in self.0.iter_mut() {
+            *v = if LN { ln1::<FMA>(*v) } else { exp1::<FMA>(*v) };
+        }
+    }
+}
+
+/// `x[i] = exp(x[i])` in place (subnormal results flush to 0).
+pub fn exp_inplace(x: &mut [f64]) {
+    dispatch(InPlace::<false>(x))
+}
+
+/// `dst[i] = exp(src[i])` (subnormal results flush to 0).
+pub fn exp_to(src: &[f64], dst: &mut [f64]) {
+    struct K<'a>(&'a [f64], &'a mut [f64]);
+    impl Kernel for K<'_> {
+        type Output = ();
+        #[inline(always)]
+        fn run<const FMA: bool>(self) {
+            for (d, &v) in self.1.iter_mut().zip(self.0) {
+                *d = exp1::<FMA>(v);
             }
-            imp::<false>($($a),*)
-        }
-    };
-}
-
-multiversion! {
-    /// `x[i] = exp(x[i])` in place (subnormal results flush to 0).
-    fn exp_inplace(x: &mut [f64]) {
-        for v in x.iter_mut() {
-            *v = exp1::<FMA>(*v);
         }
     }
-}
-
-multiversion! {
-    /// `dst[i] = exp(src[i])` (subnormal results flush to 0).
-    fn exp_to(src: &[f64], dst: &mut [f64]) {
-        for (d, &v) in dst.iter_mut().zip(src) {
-            *d = exp1::<FMA>(v);
-        }
-    }
-}
-
-multiversion! {
-    /// `ln` of positive normal finite values (see [`ln_inplace`]).
-    fn ln_normal_inplace(x: &mut [f64]) {
-        for v in x.iter_mut() {
-            *v = ln1::<FMA>(*v);
-        }
-    }
+    dispatch(K(src, dst))
 }
 
 /// `exp` of eight lanes: the same bits as [`exp_inplace`] run with the same
@@ -198,33 +174,7 @@ pub fn ln_inplace(x: &mut [f64]) {
         x.iter_mut().for_each(|v| *v = v.ln());
         return;
     }
-    ln_normal_inplace(x)
-}
-
-/// Run `f` compiled for the widest vector unit of this CPU: `f` (and what it
-/// inlines) gets AVX2 or AVX-512 code. Plain arithmetic rounds the same on
-/// every unit, so the result never depends on which one runs.
-#[inline(always)]
-pub fn simd<R>(f: impl FnOnce() -> R) -> R {
-    #[cfg(target_arch = "x86_64")]
-    {
-        #[target_feature(enable = "avx2,fma")]
-        fn avx2<R>(f: impl FnOnce() -> R) -> R {
-            f()
-        }
-        #[target_feature(enable = "avx512f,avx2,fma")]
-        fn avx512<R>(f: impl FnOnce() -> R) -> R {
-            f()
-        }
-        match isa() {
-            // SAFETY: `isa()` found these features on this CPU.
-            Isa::Avx512 => return unsafe { avx512(f) },
-            // SAFETY: as above.
-            Isa::Avx2 => return unsafe { avx2(f) },
-            Isa::Base => {}
-        }
-    }
-    f()
+    dispatch(InPlace::<true>(x))
 }
 
 /// `exp` of one value (same algorithm as [`exp_inplace`], no dispatch).
