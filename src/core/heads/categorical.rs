@@ -17,7 +17,7 @@
 //! size (`+-1e30`) give finite results: only differences to the row maximum
 //! are exponentiated.
 
-use super::math::{exp_to, exp_x8, ln_inplace, ln_normal, ln_normal_x8};
+use super::math::{exp_nonpos_x8, exp_to, ln_inplace, ln_normal, ln_normal_x8};
 use super::rng::Stream;
 use super::{
     any_nan, batch_shape, broadcast, first_error, gather_t, row_starts, same_shape, scatter_col,
@@ -384,7 +384,7 @@ fn lp_ent_group<const FMA: bool, F: Real>(
         for ((z, &x), &m) in z.iter_mut().zip(&t.0).zip(&m.0) {
             *z = x - m;
         }
-        let e = exp_x8::<FMA>(F64x8(z));
+        let e = exp_nonpos_x8::<FMA>(F64x8(z));
         for ((s, t), (&e, &z)) in s.0.iter_mut().zip(&mut tt.0).zip(e.0.iter().zip(&z)) {
             *s += e;
             *t += if e > 0.0 { e * z } else { 0.0 };

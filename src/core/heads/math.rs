@@ -43,25 +43,49 @@ const INV_FACT: [f64; 14] = [
 
 use crate::core::simd::{dispatch, madd, F64x8, Kernel};
 
-/// `exp(x)`; NaN stays NaN, results below 2^-1022 are 0.
+/// For a clamped `x`: `k = round(x / ln 2)` and `p = e^r`, `r = x - k ln 2`.
 #[inline(always)]
-fn exp1<const FMA: bool>(x: f64) -> f64 {
-    // NaN falls through `clamp` and every comparison unchanged.
-    let xc = x.clamp(EXP_LO, EXP_HI);
-    // k = round(x / ln 2) in [-1022, 1024].
-    let kf = madd::<FMA>(xc, LOG2_E, SHIFT) - SHIFT;
+fn exp_core<const FMA: bool>(xc: f64) -> (i64, f64) {
+    // t holds k in its low mantissa bits; t - SHIFT is exact.
+    let t = madd::<FMA>(xc, LOG2_E, SHIFT);
+    let kf = t - SHIFT;
     let r = madd::<FMA>(kf, -LN2_HI, xc);
     let r = madd::<FMA>(kf, -LN2_LO, r);
     let mut p = INV_FACT[13];
     for &c in INV_FACT[..13].iter().rev() {
         p = madd::<FMA>(p, r, c);
     }
-    // 2^k as 2^(k >> 1) * 2^(k - (k >> 1)): both factors are normal.
-    let k = (kf + SHIFT).to_bits().wrapping_sub(SHIFT.to_bits()) as i64;
+    (t.to_bits().wrapping_sub(SHIFT.to_bits()) as i64, p)
+}
+
+/// `exp(x)`; NaN stays NaN, results below 2^-1022 are 0.
+#[inline(always)]
+fn exp1<const FMA: bool>(x: f64) -> f64 {
+    // NaN falls through `clamp` and every comparison unchanged.
+    let xc = x.clamp(EXP_LO, EXP_HI);
+    // k in [-1022, 1024]: 2^k as 2^(k >> 1) * 2^(k - (k >> 1)), both normal.
+    let (k, p) = exp_core::<FMA>(xc);
     let k1 = k >> 1;
     let s1 = f64::from_bits(((k1 + 1023) as u64) << 52);
     let s2 = f64::from_bits(((k - k1 + 1023) as u64) << 52);
     let y = p * s1 * s2;
+    if x < EXP_LO {
+        0.0
+    } else {
+        y
+    }
+}
+
+/// [`exp1`] of `x <= 0` or NaN, the same bits with less work: `k` is in
+/// `[-1022, 0]`, so `2^k` is one normal factor. (In [`exp1`],
+/// `p * 2^(k >> 1)` is exact: `p` is in `[0.7, 1.5]` and the product at
+/// least `2^-512`; so both round once, at the last product.)
+#[inline(always)]
+fn exp1_nonpos<const FMA: bool>(x: f64) -> f64 {
+    // `clamp` (NaN stays NaN) in the form that vectorises.
+    let xc = x.clamp(EXP_LO, 0.0);
+    let (k, p) = exp_core::<FMA>(xc);
+    let y = p * f64::from_bits(((k + 1023) as u64) << 52);
     if x < EXP_LO {
         0.0
     } else {
@@ -136,13 +160,14 @@ pub fn exp_to(src: &[f64], dst: &mut [f64]) {
     dispatch(K(src, dst))
 }
 
-/// `exp` of eight lanes: the same bits as [`exp_inplace`] run with the same
-/// `FMA` (so inside a [`crate::core::simd::dispatch`] kernel, as there).
+/// `exp` of eight lanes, each `<= 0` or NaN: the same bits as
+/// [`exp_inplace`] run with the same `FMA` (so inside a
+/// [`crate::core::simd::dispatch`] kernel, as there).
 #[inline(always)]
-pub(crate) fn exp_x8<const FMA: bool>(x: F64x8) -> F64x8 {
+pub(crate) fn exp_nonpos_x8<const FMA: bool>(x: F64x8) -> F64x8 {
     let mut o = [0.0; 8];
     for (o, &v) in o.iter_mut().zip(&x.0) {
-        *o = exp1::<FMA>(v);
+        *o = exp1_nonpos::<FMA>(v);
     }
     F64x8(o)
 }
@@ -251,6 +276,45 @@ mod tests {
         assert_eq!(exp(0.0), 1.0);
     }
 
+    /// The non-positive form is [`exp1`] bit for bit, across the lower end
+    /// (subnormal results, the flush threshold) and at every power of two.
+    #[test]
+    fn exp_nonpos_is_exp_bitwise() {
+        let mut xs: Vec<f64> = (0..400_001)
+            .map(|i| -750.0 * i as f64 / 400_000.0)
+            .collect();
+        xs.extend((0..200_001).map(|i| -708.5 + 0.2 * i as f64 / 200_000.0));
+        for k in 0..=1023 {
+            let c = -(k as f64) * LN_2;
+            for d in [-1e-9, -1e-13, 0.0, 1e-13, 1e-9, 0.3465, -0.3466] {
+                xs.push((c + d).min(0.0));
+            }
+        }
+        xs.extend([
+            0.0,
+            -0.0,
+            -1e-300,
+            -5e-324,
+            f64::NEG_INFINITY,
+            EXP_LO,
+            -1e30,
+        ]);
+        for fma in [false, true] {
+            if fma && crate::core::simd::isa() == crate::core::simd::Isa::Base {
+                continue;
+            }
+            for &x in &xs {
+                let (a, b) = if fma {
+                    (exp1::<true>(x), exp1_nonpos::<true>(x))
+                } else {
+                    (exp1::<false>(x), exp1_nonpos::<false>(x))
+                };
+                assert_eq!(a.to_bits(), b.to_bits(), "x = {x:e}, fma {fma}");
+            }
+        }
+        assert!(exp1_nonpos::<false>(f64::NAN).is_nan());
+    }
+
     #[test]
     fn ln_matches_std() {
         let mut xs: Vec<f64> = (0..100_000)
@@ -297,7 +361,11 @@ mod tests {
                 let (mut e, mut l) = (Vec::new(), Vec::new());
                 for c in self.0.chunks_exact(8) {
                     let x = F64x8(c.try_into().expect("8 lanes"));
-                    e.extend(exp_x8::<FMA>(x).0);
+                    let mut z = [0.0; 8];
+                    for (z, &v) in z.iter_mut().zip(&x.0) {
+                        *z = -v.abs();
+                    }
+                    e.extend(exp_nonpos_x8::<FMA>(F64x8(z)).0);
                     let mut y = [0.0; 8];
                     for (y, &v) in y.iter_mut().zip(&x.0) {
                         *y = v.abs() + 1.0;
@@ -312,7 +380,7 @@ mod tests {
             .chain([0.0, -0.0, -1e30, 1e30, f64::NAN, -1e-300, 0.5, -0.25])
             .collect();
         let (e, l) = dispatch(Lanes(&xs));
-        let mut want_e = xs.clone();
+        let mut want_e: Vec<f64> = xs.iter().map(|v| -v.abs()).collect();
         exp_inplace(&mut want_e);
         let mut want_l: Vec<f64> = xs.iter().map(|v| v.abs() + 1.0).collect();
         // The first 8000 are all normal, so the slice form keeps its own ln.
