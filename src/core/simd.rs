@@ -100,6 +100,26 @@ pub fn dispatch<K: Kernel>(k: K) -> K::Output {
     k.run::<false>()
 }
 
+/// A closure as a [`Kernel`] (see [`wide`]).
+struct Closure<C>(C);
+
+impl<R, C: FnOnce() -> R> Kernel for Closure<C> {
+    type Output = R;
+    #[inline(always)]
+    fn run<const FMA: bool>(self) -> R {
+        (self.0)()
+    }
+}
+
+/// Run `f` through [`dispatch`]: `f` (which must be `#[inline(always)]`) and
+/// what it inlines are compiled for the widest vector unit of this CPU. It
+/// gets no `FMA` parameter: plain arithmetic rounds the same on every unit,
+/// and the kernels it calls dispatch their own fused multiply-adds.
+#[inline(always)]
+pub fn wide<R>(f: impl FnOnce() -> R) -> R {
+    dispatch(Closure(f))
+}
+
 /// Eight `f64` lanes. Every operation is a loop of constant length 8 over
 /// aligned arrays, which LLVM turns into one AVX-512 or two AVX2 (four SSE2)
 /// instructions; kernels built from these vectorise reliably where the same

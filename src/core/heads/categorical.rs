@@ -17,7 +17,7 @@
 //! size (`+-1e30`) give finite results: only differences to the row maximum
 //! are exponentiated.
 
-use super::math::{exp_to, ln_inplace, simd};
+use super::math::{exp_nonpos_x8, exp_to, ln_inplace, ln_normal, ln_normal_x8};
 use super::rng::Stream;
 use super::{
     any_nan, batch_shape, broadcast, first_error, gather_t, row_starts, same_shape, scatter_col,
@@ -26,6 +26,7 @@ use super::{
 use crate::core::error::{CoreError, CoreResult};
 use crate::core::float::Real;
 use crate::core::par::Par;
+use crate::core::simd::{dispatch, wide, F64x8, Kernel};
 use ndarray::{ArrayView2, ArrayViewD, ArrayViewMutD, Ix1, Ix2};
 
 /// An output argument: its public name (for shape errors) and its view.
@@ -187,12 +188,7 @@ pub fn categorical<F: Real>(
         })
         .collect();
     let check = lg.check_finite;
-    let results = layout.par(par).map(items, |b| {
-        simd(
-            #[inline(always)]
-            || b.run(pick, check),
-        )
-    });
+    let results = layout.par(par).map(items, |b| b.go(pick, check));
     first_error(results)
 }
 
@@ -307,6 +303,141 @@ impl Gathered {
         let mut e = Buf::stale(self.z.len());
         exp_to(&self.z, &mut e);
         e
+    }
+}
+
+impl<F: Real> Block<'_, F> {
+    /// The block through [`LpEnt`] when it applies and every row is valid,
+    /// else through the general pass (which also reports the errors).
+    fn go(mut self, pick: Pick, check: bool) -> CoreResult<()> {
+        let plain = pick == Pick::Nothing && self.mask.is_none() && self.score.is_none();
+        if let (true, Some(x)) = (plain, self.x.as_slice()) {
+            let act = self.actions.as_ref().map(|a| match a.as_slice() {
+                Some(s) => std::borrow::Cow::Borrowed(s),
+                None => std::borrow::Cow::Owned(a.iter().copied().collect()),
+            });
+            let k = self.x.ncols();
+            let done = dispatch(LpEnt {
+                x,
+                k,
+                act: act.as_deref(),
+                check,
+            });
+            if let Some((lp, h)) = done {
+                if let Some(o) = self.log_prob.take() {
+                    write_rows(&lp, o);
+                }
+                if let Some(o) = self.entropy.take() {
+                    write_rows(&h, o);
+                }
+                return Ok(());
+            }
+        }
+        wide(
+            #[inline(always)]
+            || self.run(pick, check),
+        )
+    }
+}
+
+/// Log-probabilities and entropies of a C-contiguous block without mask:
+/// eight rows at a time, each row's maximum, sums, `ln S` and results in
+/// [`F64x8`] lanes, the logits held in a `K`-column tile. Every row goes
+/// through the same operations in the same order as in the general pass
+/// (column order sums, the same `exp` and `ln`), so the bits are the same,
+/// without its column-major scratch and per-column passes.
+///
+/// `None` when some row needs the general pass: a non-finite logit (when
+/// checked), an action out of range, or a sum `S` outside the normal range.
+struct LpEnt<'a, F> {
+    /// `[n, K]` row-major.
+    x: &'a [F],
+    k: usize,
+    /// One per row, when log-probabilities are wanted.
+    act: Option<&'a [i64]>,
+    check: bool,
+}
+
+/// One row group: `(m, S, T, chk)` of eight rows `src` (`8 K` values), the
+/// logits left in `tile`.
+#[inline(always)]
+fn lp_ent_group<const FMA: bool, F: Real>(
+    src: &[F],
+    k: usize,
+    tile: &mut [F64x8],
+) -> (F64x8, F64x8, F64x8, F64x8) {
+    let rows: [&[F]; 8] = std::array::from_fn(|q| &src[q * k..(q + 1) * k]);
+    let mut m = F64x8::splat(f64::NEG_INFINITY);
+    let mut chk = F64x8::splat(0.0);
+    for (j, t) in tile.iter_mut().enumerate().take(k) {
+        let v: [f64; 8] = std::array::from_fn(|q| rows[q][j].to_f64());
+        for ((m, c), &v) in m.0.iter_mut().zip(&mut chk.0).zip(&v) {
+            *m = if v > *m { v } else { *m };
+            *c += v * 0.0;
+        }
+        *t = F64x8(v);
+    }
+    let mut s = F64x8::splat(0.0);
+    let mut tt = F64x8::splat(0.0);
+    for t in tile.iter().take(k) {
+        let mut z = [0.0; 8];
+        for ((z, &x), &m) in z.iter_mut().zip(&t.0).zip(&m.0) {
+            *z = x - m;
+        }
+        let e = exp_nonpos_x8::<FMA>(F64x8(z));
+        for ((s, t), (&e, &z)) in s.0.iter_mut().zip(&mut tt.0).zip(e.0.iter().zip(&z)) {
+            *s += e;
+            *t += if e > 0.0 { e * z } else { 0.0 };
+        }
+    }
+    (m, s, tt, chk)
+}
+
+impl<F: Real> Kernel for LpEnt<'_, F> {
+    type Output = Option<(Buf, Buf)>;
+
+    #[inline(always)]
+    fn run<const FMA: bool>(self) -> Self::Output {
+        let k = self.k;
+        let n = self.x.len().checked_div(k)?;
+        let (mut lp, mut h) = (Buf::stale(n), Buf::stale(n));
+        let mut tile = vec![F64x8::splat(0.0); k];
+        let mut pad: Vec<F> = Vec::new();
+        for r0 in (0..n).step_by(8) {
+            let rows = (n - r0).min(8);
+            let src = if rows == 8 {
+                &self.x[r0 * k..(r0 + 8) * k]
+            } else {
+                // The last rows, padded with zero logits (results dropped).
+                pad.clear();
+                pad.extend_from_slice(&self.x[r0 * k..]);
+                pad.resize(8 * k, F::from_f64(0.0));
+                &pad
+            };
+            let (m, s, t, chk) = lp_ent_group::<FMA, F>(src, k, &mut tile);
+            // Padded lanes hold zero logits: they never fail, so all eight
+            // lanes are checked and computed, branch-free.
+            let bad = (s.0.iter().zip(&chk.0)).fold(false, |b, (&s, &c)| {
+                b | !ln_normal(s) | (self.check & c.is_nan())
+            });
+            if bad {
+                return None;
+            }
+            let lns = ln_normal_x8::<FMA>(s).0;
+            let mut hv = [0.0; 8];
+            for (((h, &l), &t), &s) in hv.iter_mut().zip(&lns).zip(&t.0).zip(&s.0) {
+                *h = l - t / s;
+            }
+            h[r0..r0 + rows].copy_from_slice(&hv[..rows]);
+            if let Some(act) = self.act {
+                let out = lp[r0..r0 + rows].iter_mut().zip(&act[r0..r0 + rows]);
+                for (q, (o, &a)) in out.enumerate() {
+                    let z = tile.get(usize::try_from(a).ok()?)?.0[q] - m.0[q];
+                    *o = z - lns[q];
+                }
+            }
+        }
+        Some((lp, h))
     }
 }
 
@@ -511,7 +642,7 @@ pub fn categorical_kl<F: Real>(
         .collect();
     let check = p.check_finite;
     let results = layout.par(par).map(items, |(row0, xp, xq, mk, o)| {
-        simd(
+        wide(
             #[inline(always)]
             || {
                 let mut gp = gather(&xp, mk.as_ref(), check);
@@ -672,6 +803,160 @@ mod tests {
                 }
             }
         }
+    }
+
+    /// log p and H of C-order logits without mask (the [`LpEnt`] pass) and of
+    /// the same logits in F order (the general pass).
+    fn lp_h_both<F: Real>(x: &Array2<F>, a: Option<&Array1<i64>>, par: Par) -> [Vec<F>; 4] {
+        let b = x.nrows();
+        let mut xf = Array2::from_elem(x.dim().f(), F::from_f64(0.0));
+        xf.assign(x);
+        let run = |x: ArrayView2<'_, F>| {
+            let (mut lp, mut h) = (
+                Array1::from_elem(b, F::from_f64(0.0)),
+                Array1::from_elem(b, F::from_f64(0.0)),
+            );
+            categorical(
+                &Logits {
+                    logits: x.into_dyn(),
+                    mask: None,
+                    check_finite: true,
+                },
+                a.map(|a| a.view().into_dyn()),
+                Pick::Nothing,
+                CatOut {
+                    log_prob: a.map(|_| Out::new("out[0]", lp.view_mut().into_dyn())),
+                    entropy: Some(Out::new("out[1]", h.view_mut().into_dyn())),
+                    ..Default::default()
+                },
+                par,
+            )
+            .unwrap();
+            (lp.to_vec(), h.to_vec())
+        };
+        let (lp, h) = run(x.view());
+        let (lp_f, h_f) = run(xf.view());
+        [lp, h, lp_f, h_f]
+    }
+
+    #[test]
+    fn row_groups_match_the_general_pass_bitwise_and_the_definition() {
+        let mut seed = 5u64;
+        for &(b, k) in &[
+            (1usize, 1usize),
+            (7, 2),
+            (8, 5),
+            (9, 18),
+            (113, 18),
+            (300, 3),
+            (2049, 18),
+            (40, 33),
+            (3, 700),
+        ] {
+            // Some rows hold one +1e30 logit, some a -1e30 one.
+            let x = Array2::from_shape_fn((b, k), |(i, j)| {
+                if j == 0 && i % 5 == 1 {
+                    1e30
+                } else if j + 1 == k && i % 3 == 2 {
+                    -1e30
+                } else {
+                    lcg(&mut seed) * 30.0 - 15.0
+                }
+            });
+            let a = Array1::from_shape_fn(b, |i| ((i * 7 + 3) % k) as i64);
+            for par in [Par::Seq, Par::Rayon] {
+                let [lp, h, lp_f, h_f] = lp_h_both(&x, Some(&a), par);
+                let bits = |v: &[f64]| v.iter().map(|x| x.to_bits()).collect::<Vec<_>>();
+                assert_eq!(bits(&lp), bits(&lp_f), "{b}x{k}");
+                assert_eq!(bits(&h), bits(&h_f), "{b}x{k}");
+                for i in 0..b {
+                    let row = x.row(i).to_vec();
+                    let (rlp, rh, _) = reference(&row, None, a[i] as usize);
+                    // log p of a -1e30 logit is about -2e30: relative there.
+                    let tol = 1e-12 * rlp.abs().max(1.0);
+                    assert!((lp[i] - rlp).abs() < tol, "{b}x{k} row {i}");
+                    assert!((h[i] - rh).abs() < 1e-12, "{b}x{k} row {i}");
+                    assert!(h[i].is_finite());
+                }
+                let [_, h_only, _, h_only_f] = lp_h_both(&x, None, par);
+                assert_eq!(bits(&h_only), bits(&h));
+                assert_eq!(bits(&h_only_f), bits(&h));
+            }
+            let x32 = x.mapv(|v| v as f32);
+            let [lp, h, lp_f, h_f] = lp_h_both(&x32, Some(&a), Par::Rayon);
+            assert_eq!(lp, lp_f);
+            assert_eq!(h, h_f);
+        }
+    }
+
+    #[test]
+    fn row_groups_leave_errors_to_the_general_pass() {
+        let mut x = Array2::from_shape_fn((50, 4), |(i, j)| (i * 4 + j) as f64 * 0.01);
+        x[[41, 2]] = f64::INFINITY;
+        x[[45, 0]] = f64::NAN;
+        let a = Array1::from_shape_fn(50, |i| (i % 4) as i64);
+        let mut lp = Array1::zeros(50);
+        let lg = Logits {
+            logits: x.view().into_dyn(),
+            mask: None,
+            check_finite: true,
+        };
+        let e = categorical(
+            &lg,
+            Some(a.view().into_dyn()),
+            Pick::Nothing,
+            CatOut {
+                log_prob: Some(Out::new("out", lp.view_mut().into_dyn())),
+                ..Default::default()
+            },
+            Par::Seq,
+        )
+        .unwrap_err();
+        assert_eq!(e, CoreError::non_finite("logits", At::RowCol(41, 2)));
+        let mut bad = a.clone();
+        bad[9] = 4;
+        let e = categorical(
+            &Logits {
+                logits: x.slice(ndarray::s![..40, ..]).into_dyn(),
+                ..lg.clone()
+            },
+            Some(bad.slice(ndarray::s![..40]).into_dyn()),
+            Pick::Nothing,
+            CatOut {
+                log_prob: Some(Out::new("out", lp.slice_mut(ndarray::s![..40]).into_dyn())),
+                ..Default::default()
+            },
+            Par::Seq,
+        )
+        .unwrap_err();
+        assert!(matches!(
+            e,
+            CoreError::Input {
+                arg: "actions",
+                at: Some(At::Flat(9)),
+                ..
+            }
+        ));
+        // Unchecked non-finite logits: the general pass's results (NaN rows).
+        let unchecked = Logits {
+            check_finite: false,
+            ..lg.clone()
+        };
+        let mut h = Array1::zeros(50);
+        categorical(
+            &unchecked,
+            Some(a.view().into_dyn()),
+            Pick::Nothing,
+            CatOut {
+                log_prob: Some(Out::new("out[0]", lp.view_mut().into_dyn())),
+                entropy: Some(Out::new("out[1]", h.view_mut().into_dyn())),
+                ..Default::default()
+            },
+            Par::Seq,
+        )
+        .unwrap();
+        assert!(h[41].is_nan() && h[45].is_nan() && lp[45].is_nan());
+        assert!(h[0].is_finite() && lp[0].is_finite());
     }
 
     #[test]

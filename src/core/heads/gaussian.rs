@@ -19,7 +19,7 @@
 //! log-Jacobian of the squash.
 
 use super::categorical::Out;
-use super::math::{exp_inplace, exp_to, half_tanh_p1, log1m_tanh2, simd, HALF_LN_2PI};
+use super::math::{exp_inplace, exp_to, half_tanh_p1, log1m_tanh2, HALF_LN_2PI};
 use super::rng::Stream;
 use super::squashed::Bounds;
 use super::{
@@ -31,6 +31,7 @@ use crate::core::error::{CoreError, CoreResult};
 use crate::core::finite::all_finite;
 use crate::core::float::Real;
 use crate::core::par::Par;
+use crate::core::simd::wide;
 use ndarray::{ArrayView2, ArrayViewD, ArrayViewMutD, Ix1};
 
 /// The log standard deviation of a Gaussian head.
@@ -306,7 +307,7 @@ pub(crate) fn run<F: Real>(
         entropy_const,
     };
     let results = layout.par(par).map(items, |b| {
-        simd(
+        wide(
             #[inline(always)]
             || ctx.block(b),
         )
@@ -318,7 +319,16 @@ impl Ctx<'_> {
     /// One block, row-major: elementwise terms over the flat block vectorise
     /// for any `D`, and every row sum adds its `D` terms in axis order.
     #[inline(always)]
-    fn block<F: Real>(&self, b: GBlock<'_, F>) -> CoreResult<()> {
+    fn block<F: Real>(&self, mut b: GBlock<'_, F>) -> CoreResult<()> {
+        if let (Some(lp), Some(c)) = (self.lp_direct(&b), self.entropy_const) {
+            if let Some(o) = b.log_prob.take() {
+                write_rows(&lp, o);
+            }
+            if let Some(mut o) = b.entropy.take() {
+                o.fill(F::from_f64(c));
+            }
+            return Ok(());
+        }
         let (n, d) = b.mean.dim();
         let nd = n * d;
         let check = self.check;
@@ -460,6 +470,36 @@ impl Ctx<'_> {
         Ok(())
     }
 
+    /// The log-densities of a block with a shared log_std, C-contiguous mean
+    /// and actions and no per-element output, the terms computed straight
+    /// from the inputs: no `f64` copies of them and no finiteness pass over
+    /// them. A non-finite input makes its row's sum non-finite (`z` is then
+    /// NaN or infinite, and every term is at most `-log_std`), so only the
+    /// `n` sums are checked; `None` sends a block with a non-finite sum
+    /// through the general pass, which checks the inputs. Same operations
+    /// in the same order as there, so the same bits.
+    #[inline(always)]
+    fn lp_direct<F: Real>(&self, b: &GBlock<'_, F>) -> Option<Buf> {
+        let (tls, tinv) = self.shared.as_ref()?;
+        let others = b.ls.is_some() || b.d_mean.is_some() || b.d_log_std.is_some();
+        if others || b.sample.is_some() || self.bounds.is_some() || b.log_prob.is_none() {
+            return None;
+        }
+        let (n, d) = b.mean.dim();
+        let nd = n * d;
+        let (ms, xs) = (b.mean.as_slice()?, b.a.as_ref()?.as_slice()?);
+        let mut t = Buf::stale(nd);
+        t.iter_mut()
+            .zip(xs.iter().zip(ms))
+            .zip(tls[..nd].iter().zip(&tinv[..nd]))
+            .for_each(|((t, (&x, &m)), (&s, &iv))| {
+                let z = (x.to_f64() - m.to_f64()) * iv;
+                *t = -0.5 * z * z - s;
+            });
+        let lp = row_sums(&t, n, d, -(d as f64) * HALF_LN_2PI);
+        all_finite(&lp).then_some(lp)
+    }
+
     /// The first bad element of row `r`, if any.
     fn row_error<F: Real>(
         &self,
@@ -514,8 +554,25 @@ fn row_sums(x: &[f64], n: usize, d: usize, c: f64) -> Buf {
         out.fill(c);
         return out;
     }
-    for (o, row) in out.iter_mut().zip(x.chunks_exact(d)) {
-        *o = row.iter().fold(0.0, |a, &v| a + v) + c;
+    let row_sum = |row: &[f64]| row.iter().fold(0.0, |a, &v| a + v) + c;
+    // Eight rows at a time, the loop running across them (so it vectorises
+    // for any `d`), each row still adding its terms in axis order from 0.
+    let full = n / 8 * 8;
+    let (head, tail) = out.split_at_mut(full);
+    for (o, blk) in head.chunks_exact_mut(8).zip(x.chunks_exact(8 * d)) {
+        let rows: [&[f64]; 8] = std::array::from_fn(|q| &blk[q * d..(q + 1) * d]);
+        let mut acc = [0.0f64; 8];
+        for j in 0..d {
+            for (a, row) in acc.iter_mut().zip(&rows) {
+                *a += row[j];
+            }
+        }
+        for (o, &a) in o.iter_mut().zip(&acc) {
+            *o = a + c;
+        }
+    }
+    for (o, row) in tail.iter_mut().zip(x[full * d..].chunks_exact(d)) {
+        *o = row_sum(row);
     }
     out
 }
@@ -756,6 +813,88 @@ mod tests {
                 assert!((h[[i]] - want_h).abs() < 1e-12);
             }
         }
+    }
+
+    /// A shared log_std with C-order mean and actions takes `lp_direct`; F
+    /// order takes the general pass: the same bits, the definition, and the
+    /// general pass's errors for non-finite inputs.
+    #[test]
+    fn direct_log_prob_matches_the_general_pass_bitwise() {
+        let (b, d) = (1000usize, 6usize);
+        let ls = vec![-0.3, 0.0, 0.25, 1.5, -2.0, 0.7];
+        let mean = Array2::from_shape_fn((b, d), |(i, j)| ((i * 7 + j) % 13) as f64 * 0.37 - 2.0);
+        let act =
+            Array2::from_shape_fn((b, d), |(i, j)| ((i * 5 + 3 * j) % 17) as f64 * 0.29 - 2.4);
+        let run = |mean: &Array2<f64>, act: &Array2<f64>, check: bool, par| {
+            let (mut lp, mut h) = (ArrayD::zeros(IxDyn(&[b])), ArrayD::zeros(IxDyn(&[b])));
+            let nrm = Normal {
+                mean: mean.view().into_dyn(),
+                log_std: LogStd::Shared(ls.clone()),
+                check_finite: check,
+            };
+            let out = GaussOut {
+                log_prob: Some(Out::new("out[0]", lp.view_mut())),
+                entropy: Some(Out::new("out[1]", h.view_mut())),
+                ..Default::default()
+            };
+            gaussian(&nrm, Some(act.view().into_dyn()), None, out, par).map(|()| (lp, h))
+        };
+        let fortran = |x: &Array2<f64>| {
+            let mut f = Array2::zeros((b, d).f());
+            f.assign(x);
+            f
+        };
+        for par in [Par::Seq, Par::Rayon] {
+            let (lp, h) = run(&mean, &act, true, par).unwrap();
+            let (lp_f, h_f) = run(&fortran(&mean), &fortran(&act), true, par).unwrap();
+            let bits = |v: &ArrayD<f64>| v.iter().map(|x| x.to_bits()).collect::<Vec<_>>();
+            assert_eq!(bits(&lp), bits(&lp_f));
+            assert_eq!(bits(&h), bits(&h_f));
+            let want_h: f64 = ls.iter().map(|s| s + 0.5 + HALF_LN_2PI).sum();
+            for i in 0..b {
+                let mut want = 0.0;
+                for (j, &s) in ls.iter().enumerate() {
+                    let z = (act[[i, j]] - mean[[i, j]]) / s.exp();
+                    want += -0.5 * z * z - s - HALF_LN_2PI;
+                }
+                assert!((lp[[i]] - want).abs() < 1e-12, "row {i}");
+                assert!((h[[i]] - want_h).abs() < 1e-12);
+            }
+        }
+        let mut bad = act.clone();
+        bad[[700, 4]] = f64::NEG_INFINITY;
+        bad[[900, 1]] = f64::NAN;
+        let e = run(&mean, &bad, true, Par::Rayon).unwrap_err();
+        assert_eq!(e, CoreError::non_finite("actions", At::RowCol(700, 4)));
+        let mut bad_mean = mean.clone();
+        bad_mean[[3, 0]] = f64::INFINITY;
+        let e = run(&bad_mean, &act, true, Par::Seq).unwrap_err();
+        assert_eq!(e, CoreError::non_finite("mean", At::RowCol(3, 0)));
+        // Unchecked: the general pass's non-finite rows, the rest unchanged.
+        let (lp, _) = run(&mean, &bad, false, Par::Seq).unwrap();
+        let (lp0, _) = run(&mean, &act, false, Par::Seq).unwrap();
+        assert_eq!(lp[[700]], f64::NEG_INFINITY);
+        assert!(lp[[900]].is_nan());
+        assert_eq!(lp[[0]].to_bits(), lp0[[0]].to_bits());
+    }
+
+    /// The eight-row sums add each row's terms in axis order from 0: the bits
+    /// of the plain fold, for any `d` and row count.
+    #[test]
+    fn row_sums_are_the_plain_fold_bitwise() {
+        for d in [1usize, 2, 5, 6, 8, 17] {
+            for n in [0usize, 1, 7, 8, 9, 23, 341] {
+                let x: Vec<f64> = (0..n * d)
+                    .map(|i| ((i * 2654435761) % 1000) as f64 * 1.37e-3 - 0.61)
+                    .collect();
+                let got = row_sums(&x, n, d, -1.25);
+                for r in 0..n {
+                    let want = x[r * d..(r + 1) * d].iter().fold(0.0, |a, &v| a + v) + -1.25;
+                    assert_eq!(got[r].to_bits(), want.to_bits(), "d {d} n {n} row {r}");
+                }
+            }
+        }
+        assert!(row_sums(&[], 3, 0, 2.5).iter().all(|&v| v == 2.5));
     }
 
     #[test]

@@ -2,8 +2,9 @@
 //! vectorise: `exp` and `ln` without calls into libm per element.
 //!
 //! Both are accurate to about one ulp over their whole domain (tested against
-//! the standard library below). On x86-64 CPUs with AVX2 and FMA the loops are
-//! compiled a second time with those features and picked at run time, so one
+//! the standard library below). The slice forms are [`Kernel`]s run through
+//! [`dispatch`] (fused multiply-adds on the AVX2 / AVX-512 builds); the
+//! eight-lane forms take the `FMA` of the kernel they are inlined into. So one
 //! machine always runs the same instructions (results never depend on the
 //! thread count, only, in the last bit, on the CPU).
 
@@ -40,27 +41,51 @@ const INV_FACT: [f64; 14] = [
     1.605_904_383_682_161_3e-10,
 ];
 
-use crate::core::simd::{isa, madd, Isa};
+use crate::core::simd::{dispatch, madd, F64x8, Kernel};
 
-/// `exp(x)`; NaN stays NaN, results below 2^-1022 are 0.
+/// For a clamped `x`: `k = round(x / ln 2)` and `p = e^r`, `r = x - k ln 2`.
 #[inline(always)]
-fn exp1<const FMA: bool>(x: f64) -> f64 {
-    // NaN falls through `clamp` and every comparison unchanged.
-    let xc = x.clamp(EXP_LO, EXP_HI);
-    // k = round(x / ln 2) in [-1022, 1024].
-    let kf = madd::<FMA>(xc, LOG2_E, SHIFT) - SHIFT;
+fn exp_core<const FMA: bool>(xc: f64) -> (i64, f64) {
+    // t holds k in its low mantissa bits; t - SHIFT is exact.
+    let t = madd::<FMA>(xc, LOG2_E, SHIFT);
+    let kf = t - SHIFT;
     let r = madd::<FMA>(kf, -LN2_HI, xc);
     let r = madd::<FMA>(kf, -LN2_LO, r);
     let mut p = INV_FACT[13];
     for &c in INV_FACT[..13].iter().rev() {
         p = madd::<FMA>(p, r, c);
     }
-    // 2^k as 2^(k >> 1) * 2^(k - (k >> 1)): both factors are normal.
-    let k = (kf + SHIFT).to_bits().wrapping_sub(SHIFT.to_bits()) as i64;
+    (t.to_bits().wrapping_sub(SHIFT.to_bits()) as i64, p)
+}
+
+/// `exp(x)`; NaN stays NaN, results below 2^-1022 are 0.
+#[inline(always)]
+fn exp1<const FMA: bool>(x: f64) -> f64 {
+    // NaN falls through `clamp` and every comparison unchanged.
+    let xc = x.clamp(EXP_LO, EXP_HI);
+    // k in [-1022, 1024]: 2^k as 2^(k >> 1) * 2^(k - (k >> 1)), both normal.
+    let (k, p) = exp_core::<FMA>(xc);
     let k1 = k >> 1;
     let s1 = f64::from_bits(((k1 + 1023) as u64) << 52);
     let s2 = f64::from_bits(((k - k1 + 1023) as u64) << 52);
     let y = p * s1 * s2;
+    if x < EXP_LO {
+        0.0
+    } else {
+        y
+    }
+}
+
+/// [`exp1`] of `x <= 0` or NaN, the same bits with less work: `k` is in
+/// `[-1022, 0]`, so `2^k` is one normal factor. (In [`exp1`],
+/// `p * 2^(k >> 1)` is exact: `p` is in `[0.7, 1.5]` and the product at
+/// least `2^-512`; so both round once, at the last product.)
+#[inline(always)]
+fn exp1_nonpos<const FMA: bool>(x: f64) -> f64 {
+    // `clamp` (NaN stays NaN) in the form that vectorises.
+    let xc = x.clamp(EXP_LO, 0.0);
+    let (k, p) = exp_core::<FMA>(xc);
+    let y = p * f64::from_bits(((k + 1023) as u64) << 52);
     if x < EXP_LO {
         0.0
     } else {
@@ -101,104 +126,80 @@ fn ln1<const FMA: bool>(x: f64) -> f64 {
     madd::<FMA>(k, LN2_HI, (a - hfsq) + f)
 }
 
-/// Define `pub fn $name(args)` whose body (generic over `const FMA: bool`) is
-/// compiled three times: baseline x86-64 / other targets, AVX2 + FMA, and
-/// AVX-512; the widest one this CPU has runs.
-macro_rules! multiversion {
-    ($(#[$m:meta])* fn $name:ident($($a:ident: $t:ty),*) $body:block) => {
-        $(#[$m])*
-        pub fn $name($($a: $t),*) {
-            #[inline(always)]
-            fn imp<const FMA: bool>($($a: $t),*) $body
-            #[cfg(target_arch = "x86_64")]
-            {
-                #[target_feature(enable = "avx2,fma")]
-                fn avx2($($a: $t),*) {
-                    imp::<true>($($a),*)
-                }
-                #[target_feature(enable = "avx512f,avx2,fma")]
-                fn avx512($($a: $t),*) {
-                    imp::<true>($($a),*)
-                }
-                match isa() {
-                    // SAFETY: `isa()` found these features on this CPU.
-                    Isa::Avx512 => return unsafe { avx512($($a),*) },
-                    // SAFETY: as above.
-                    Isa::Avx2 => return unsafe { avx2($($a),*) },
-                    Isa::Base => {}
-                }
+/// `x[i] = exp(x[i])` (`LN = false`) or `ln(x[i])` of positive normal
+/// finite values (`LN = true`), in place.
+struct InPlace<'a, const LN: bool>(&'a mut [f64]);
+
+impl<const LN: bool> Kernel for InPlace<'_, LN> {
+    type Output = ();
+    #[inline(always)]
+    fn run<const FMA: bool>(self) {
+        for v in self.0.iter_mut() {
+            *v = if LN { ln1::<FMA>(*v) } else { exp1::<FMA>(*v) };
+        }
+    }
+}
+
+/// `x[i] = exp(x[i])` in place (subnormal results flush to 0).
+pub fn exp_inplace(x: &mut [f64]) {
+    dispatch(InPlace::<false>(x))
+}
+
+/// `dst[i] = exp(src[i])` (subnormal results flush to 0).
+pub fn exp_to(src: &[f64], dst: &mut [f64]) {
+    struct K<'a>(&'a [f64], &'a mut [f64]);
+    impl Kernel for K<'_> {
+        type Output = ();
+        #[inline(always)]
+        fn run<const FMA: bool>(self) {
+            for (d, &v) in self.1.iter_mut().zip(self.0) {
+                *d = exp1::<FMA>(v);
             }
-            imp::<false>($($a),*)
-        }
-    };
-}
-
-multiversion! {
-    /// `x[i] = exp(x[i])` in place (subnormal results flush to 0).
-    fn exp_inplace(x: &mut [f64]) {
-        for v in x.iter_mut() {
-            *v = exp1::<FMA>(*v);
         }
     }
+    dispatch(K(src, dst))
 }
 
-multiversion! {
-    /// `dst[i] = exp(src[i])` (subnormal results flush to 0).
-    fn exp_to(src: &[f64], dst: &mut [f64]) {
-        for (d, &v) in dst.iter_mut().zip(src) {
-            *d = exp1::<FMA>(v);
-        }
+/// `exp` of eight lanes, each `<= 0` or NaN: the same bits as
+/// [`exp_inplace`] run with the same `FMA` (so inside a
+/// [`crate::core::simd::dispatch`] kernel, as there).
+#[inline(always)]
+pub(crate) fn exp_nonpos_x8<const FMA: bool>(x: F64x8) -> F64x8 {
+    let mut o = [0.0; 8];
+    for (o, &v) in o.iter_mut().zip(&x.0) {
+        *o = exp1_nonpos::<FMA>(v);
     }
+    F64x8(o)
 }
 
-multiversion! {
-    /// `ln` of positive normal finite values (see [`ln_inplace`]).
-    fn ln_normal_inplace(x: &mut [f64]) {
-        for v in x.iter_mut() {
-            *v = ln1::<FMA>(*v);
-        }
+/// `ln` of eight lanes, each positive, normal and finite (see [`ln_normal`]):
+/// the same bits as [`ln_inplace`] run with the same `FMA`.
+#[inline(always)]
+pub(crate) fn ln_normal_x8<const FMA: bool>(x: F64x8) -> F64x8 {
+    let mut o = [0.0; 8];
+    for (o, &v) in o.iter_mut().zip(&x.0) {
+        *o = ln1::<FMA>(v);
     }
+    F64x8(o)
+}
+
+/// Whether [`ln_normal_x8`] is exact for `x`: positive, normal and finite.
+#[inline(always)]
+pub(crate) fn ln_normal(x: f64) -> bool {
+    (f64::MIN_POSITIVE..f64::INFINITY).contains(&x)
 }
 
 /// `x[i] = ln(x[i])` in place, exact IEEE semantics for 0, negatives, inf,
 /// NaN and subnormals.
 pub fn ln_inplace(x: &mut [f64]) {
-    let special = x.iter().fold(false, |a, &v| {
-        a | !(f64::MIN_POSITIVE..f64::INFINITY).contains(&v)
-    });
+    let special = x.iter().fold(false, |a, &v| a | !ln_normal(v));
     if special {
         // Rare: take the standard library for everything (same results where
         // both are defined, to the last ulp or so).
         x.iter_mut().for_each(|v| *v = v.ln());
         return;
     }
-    ln_normal_inplace(x)
-}
-
-/// Run `f` compiled for the widest vector unit of this CPU: `f` (and what it
-/// inlines) gets AVX2 or AVX-512 code. Plain arithmetic rounds the same on
-/// every unit, so the result never depends on which one runs.
-#[inline(always)]
-pub fn simd<R>(f: impl FnOnce() -> R) -> R {
-    #[cfg(target_arch = "x86_64")]
-    {
-        #[target_feature(enable = "avx2,fma")]
-        fn avx2<R>(f: impl FnOnce() -> R) -> R {
-            f()
-        }
-        #[target_feature(enable = "avx512f,avx2,fma")]
-        fn avx512<R>(f: impl FnOnce() -> R) -> R {
-            f()
-        }
-        match isa() {
-            // SAFETY: `isa()` found these features on this CPU.
-            Isa::Avx512 => return unsafe { avx512(f) },
-            // SAFETY: as above.
-            Isa::Avx2 => return unsafe { avx2(f) },
-            Isa::Base => {}
-        }
-    }
-    f()
+    dispatch(InPlace::<true>(x))
 }
 
 /// `exp` of one value (same algorithm as [`exp_inplace`], no dispatch).
@@ -275,6 +276,45 @@ mod tests {
         assert_eq!(exp(0.0), 1.0);
     }
 
+    /// The non-positive form is [`exp1`] bit for bit, across the lower end
+    /// (subnormal results, the flush threshold) and at every power of two.
+    #[test]
+    fn exp_nonpos_is_exp_bitwise() {
+        let mut xs: Vec<f64> = (0..400_001)
+            .map(|i| -750.0 * i as f64 / 400_000.0)
+            .collect();
+        xs.extend((0..200_001).map(|i| -708.5 + 0.2 * i as f64 / 200_000.0));
+        for k in 0..=1023 {
+            let c = -(k as f64) * LN_2;
+            for d in [-1e-9, -1e-13, 0.0, 1e-13, 1e-9, 0.3465, -0.3466] {
+                xs.push((c + d).min(0.0));
+            }
+        }
+        xs.extend([
+            0.0,
+            -0.0,
+            -1e-300,
+            -5e-324,
+            f64::NEG_INFINITY,
+            EXP_LO,
+            -1e30,
+        ]);
+        for fma in [false, true] {
+            if fma && crate::core::simd::isa() == crate::core::simd::Isa::Base {
+                continue;
+            }
+            for &x in &xs {
+                let (a, b) = if fma {
+                    (exp1::<true>(x), exp1_nonpos::<true>(x))
+                } else {
+                    (exp1::<false>(x), exp1_nonpos::<false>(x))
+                };
+                assert_eq!(a.to_bits(), b.to_bits(), "x = {x:e}, fma {fma}");
+            }
+        }
+        assert!(exp1_nonpos::<false>(f64::NAN).is_nan());
+    }
+
     #[test]
     fn ln_matches_std() {
         let mut xs: Vec<f64> = (0..100_000)
@@ -306,6 +346,53 @@ mod tests {
         assert_eq!(sp[2], f64::INFINITY);
         assert_eq!(sp[4], 5e-324f64.ln());
         assert_eq!(sp[5], 3f64.ln());
+    }
+
+    /// The eight-lane forms inside a dispatched kernel give the bits of the
+    /// slice forms (which dispatch the same way).
+    #[test]
+    fn lane_forms_match_slice_forms() {
+        use crate::core::simd::{dispatch, Kernel};
+        struct Lanes<'a>(&'a [f64]);
+        impl Kernel for Lanes<'_> {
+            type Output = (Vec<f64>, Vec<f64>);
+            #[inline(always)]
+            fn run<const FMA: bool>(self) -> Self::Output {
+                let (mut e, mut l) = (Vec::new(), Vec::new());
+                for c in self.0.chunks_exact(8) {
+                    let x = F64x8(c.try_into().expect("8 lanes"));
+                    let mut z = [0.0; 8];
+                    for (z, &v) in z.iter_mut().zip(&x.0) {
+                        *z = -v.abs();
+                    }
+                    e.extend(exp_nonpos_x8::<FMA>(F64x8(z)).0);
+                    let mut y = [0.0; 8];
+                    for (y, &v) in y.iter_mut().zip(&x.0) {
+                        *y = v.abs() + 1.0;
+                    }
+                    l.extend(ln_normal_x8::<FMA>(F64x8(y)).0);
+                }
+                (e, l)
+            }
+        }
+        let xs: Vec<f64> = (0..8000)
+            .map(|i| -750.0 + 1460.0 * i as f64 / 7999.0)
+            .chain([0.0, -0.0, -1e30, 1e30, f64::NAN, -1e-300, 0.5, -0.25])
+            .collect();
+        let (e, l) = dispatch(Lanes(&xs));
+        let mut want_e: Vec<f64> = xs.iter().map(|v| -v.abs()).collect();
+        exp_inplace(&mut want_e);
+        let mut want_l: Vec<f64> = xs.iter().map(|v| v.abs() + 1.0).collect();
+        // The first 8000 are all normal, so the slice form keeps its own ln.
+        ln_inplace(&mut want_l[..8000]);
+        for i in 0..xs.len() {
+            assert_eq!(e[i].to_bits(), want_e[i].to_bits(), "exp({})", xs[i]);
+            if i < 8000 {
+                assert_eq!(l[i].to_bits(), want_l[i].to_bits(), "ln({})", xs[i]);
+            }
+        }
+        assert!(ln_normal(1.0) && !ln_normal(0.0) && !ln_normal(f64::INFINITY));
+        assert!(!ln_normal(f64::NAN) && !ln_normal(1e-310) && ln_normal(f64::MAX));
     }
 
     #[test]

@@ -185,11 +185,17 @@ impl Layout {
             }
         }
         let last = shape.last().copied().unwrap_or(1);
+        // A multiple of 8 rows when a block holds that many: the row-group
+        // kernels then have no padded group but in the last block.
+        let per_block = match BLOCK_ELEMS / k.max(1) {
+            r if r >= 8 => r / 8 * 8,
+            r => r,
+        };
         Layout {
             nb,
             merges,
             nb_folded: shape.len().max(1),
-            per_block: (BLOCK_ELEMS / k.max(1)).clamp(1, last.max(1)),
+            per_block: per_block.clamp(1, last.max(1)),
             rows,
             work: rows * k.max(1),
         }
@@ -480,6 +486,23 @@ mod tests {
             *starts.last().unwrap() + blocks.last().unwrap().shape()[0],
             2100
         );
+    }
+
+    #[test]
+    fn blocks_hold_whole_row_groups() {
+        for (k, want) in [
+            (18usize, 112usize),
+            (6, 336),
+            (1, 2048),
+            (300, 6),
+            (3000, 1),
+        ] {
+            let a = ndarray::Array2::<f32>::zeros((5000, k));
+            let l = Layout::new(&[5000], k, &[a.strides()]);
+            assert_eq!(l.per_block, want, "k = {k}");
+            let b = l.split(a.view().into_dyn());
+            assert_eq!(b.iter().map(|b| b.shape()[0]).sum::<usize>(), 5000);
+        }
     }
 
     #[test]
