@@ -242,8 +242,8 @@ impl<F: Real> Terms for GaeTerms<'_, F> {
 
 /// Stores `y` rounded to `F` (returns, or advantages alone).
 ///
-/// `poison` sums `y - y` over every output: 0 while all are finite, NaN
-/// after any is not. Every input step enters its own output with weight 1, so
+/// `poison` sums the finite marks (`y - y`) of every output, handed over by
+/// each run: 0 while all are finite, NaN after any is not. Every input step enters its own output with weight 1, so
 /// a non-finite input always shows here, at two vector operations per 8 steps
 /// instead of a separate pass over the inputs.
 struct OneOut<'o, F> {
@@ -259,12 +259,14 @@ impl<F: Real> Sink for OneOut<'_, F> {
         for (o, &y) in o.iter_mut().zip(&y.0) {
             *o = F::from_f64(y);
         }
-        self.poison = self.poison + y.finite_marks();
     }
     #[inline(always)]
     fn put1(&mut self, t: usize, y: f64) {
         self.out[t - self.base] = F::from_f64(y);
-        self.poison.0[0] += finite_mark(y);
+    }
+    #[inline(always)]
+    fn marks(&mut self, m: F64x8) {
+        self.poison = self.poison + m;
     }
 }
 
@@ -291,14 +293,16 @@ impl<F: Real> Sink for GaeOut<'_, '_, F> {
             a[j] = F::from_f64(y);
             r[j] = F::from_f64(y + v[j].to_f64());
         }
-        self.poison = self.poison + y.finite_marks();
     }
     #[inline(always)]
     fn put1(&mut self, t: usize, y: f64) {
         let i = t - self.base;
         self.adv[i] = F::from_f64(y);
         self.ret[i] = F::from_f64(y + self.v[i].to_f64());
-        self.poison.0[0] += finite_mark(y);
+    }
+    #[inline(always)]
+    fn marks(&mut self, m: F64x8) {
+        self.poison = self.poison + m;
     }
 }
 
@@ -452,6 +456,9 @@ impl<F: Real> Block<'_, '_, '_, F> {
                         let a = gae_last(r[t - s0], v[t - s0], gamma, gamma * lam, tail);
                         if let Some(s) = sink.as_deref_mut() {
                             s.put1(t, a);
+                            let mut m = F64x8::splat(0.0);
+                            m.0[0] = finite_mark(a);
+                            s.marks(m);
                         }
                         self.scan::<T, S>(terms, sink.as_deref_mut(), lo, t, a)
                     }

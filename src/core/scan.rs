@@ -21,7 +21,7 @@
 //! 8 steps. The result is the recurrence's value up to rounding (a few ulps
 //! of f64), and it depends only on the run, never on the thread count.
 
-use super::simd::{madd, F64x8};
+use super::simd::{finite_mark, madd, F64x8};
 
 /// Steps per block of a run.
 pub const W: usize = 8;
@@ -104,20 +104,15 @@ pub trait Sink {
     fn put8(&mut self, t: usize, y: &F64x8);
     /// Store `y[t]`.
     fn put1(&mut self, t: usize, y: f64);
-}
-
-/// A sink that stores nothing (to compute only a run's first value).
-pub struct Discard;
-
-impl Sink for Discard {
-    #[inline(always)]
-    fn put8(&mut self, _: usize, _: &F64x8) {}
-    #[inline(always)]
-    fn put1(&mut self, _: usize, _: f64) {}
+    /// Take the finite marks of the outputs just stored
+    /// ([`F64x8::finite_marks`] summed: 0 while every one is finite).
+    fn marks(&mut self, m: F64x8);
 }
 
 /// Scan the run `[lo, hi)` right to left with `y[hi] = carry`, storing every
-/// `y[t]` in `out`; returns `y[lo]` (or `carry` when the run is empty).
+/// `y[t]` in `out` and handing it the outputs' finite marks once, at the end
+/// (summed in a local, so the loop keeps them in a register); returns `y[lo]`
+/// (or `carry` when the run is empty).
 ///
 /// `c == 0` is taken exactly: `y = x`, so a non-finite carry does not leak
 /// into the run (`0 * inf` would be NaN).
@@ -131,11 +126,14 @@ pub fn run<const FMA: bool, T: Terms, S: Sink>(
     carry: f64,
 ) -> f64 {
     let mut y = carry;
+    let mut marks = F64x8::splat(0.0);
     if k.c == 0.0 {
         for t in (lo..hi).rev() {
             y = terms.x1(t);
             out.put1(t, y);
+            marks.0[0] += finite_mark(y);
         }
+        out.marks(marks);
         return y;
     }
     let mut t = hi;
@@ -143,13 +141,16 @@ pub fn run<const FMA: bool, T: Terms, S: Sink>(
         t -= W;
         let ys = k.block::<FMA>(&terms.x8(t), y);
         out.put8(t, &ys);
+        marks = marks + ys.finite_marks();
         y = ys.0[0];
     }
     while t > lo {
         t -= 1;
         y = madd::<FMA>(k.c, y, terms.x1(t));
         out.put1(t, y);
+        marks.0[0] += finite_mark(y);
     }
+    out.marks(marks);
     y
 }
 
@@ -262,6 +263,7 @@ mod tests {
         fn put1(&mut self, t: usize, y: f64) {
             self.0[t] = y;
         }
+        fn marks(&mut self, _: F64x8) {}
     }
 
     /// The recurrence one step at a time, from its definition.
