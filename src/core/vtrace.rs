@@ -446,11 +446,6 @@ mod tests {
         // The tile loop (taken for Fortran-ordered inputs; the C-ordered ones
         // above take rows.rs) agrees bitwise, on its AVX2 path (when the CPU
         // has it) and on its baseline path.
-        let fortran = |x: &Array2<f32>| {
-            let mut f = Array2::<f32>::zeros(x.raw_dim().f());
-            f.assign(x);
-            f
-        };
         let (rf, vf, bf, tf) = (fortran(&r32), fortran(&v32), fortran(&b32), fortran(&t32));
         let steps_f = Steps {
             values: Some(vf.view()),
