@@ -4,10 +4,7 @@
 
 use super::convert::{as_flags, out_array, out_pair, promote_floats, Floats};
 use super::errors::{core_err_at, fmt_index, internal_error, ShapeError};
-use super::layout::Layout;
-use super::returns::{
-    map_sub_err, overlap_err, plain_in, plain_out, plain_work, Borrowed, Sink, TimeMajorArgs,
-};
+use super::returns::{overlap_err, run_pair, Borrowed, TimeMajorArgs};
 use super::threads::run;
 use crate::core::error::fmt_shape;
 use crate::core::policy::{self, at_least_1d};
@@ -364,75 +361,19 @@ fn vtrace_impl<'py, F: Element + Real + Default>(
         let mut vw = vs.try_readwrite().map_err(|e| overlap_err("out[0]", e))?;
         let mut pw = pg.try_readwrite().map_err(|e| overlap_err("out[1]", e))?;
         let work = 4 * shape.iter().product::<usize>();
-        // Plain [T, N] C-contiguous buffers: no layout planning (as in gae).
-        if let (Some(steps), Some(bp), Some(tp), Some(mut x), Some(mut y)) = (
-            b.plain(a.time_axis),
-            plain_in(&rb),
-            plain_in(&rt),
-            plain_out(vw.as_array_mut()),
-            plain_out(pw.as_array_mut()),
-        ) {
-            let l = Layout::new(&shape, 0);
-            let work = plain_work(&steps, work);
-            let res = run(py, work, |par| {
-                vtrace_core::vtrace(
-                    &steps,
-                    bp,
-                    tp,
-                    p,
-                    check_finite,
-                    x.view_mut(),
-                    y.view_mut(),
-                    par,
-                )
-                .map_err(|e| (0, e))
-            })?;
-            map_sub_err(&l, res)?;
-        } else {
-            let l = b.layout(
-                a.time_axis,
-                &[
-                    vw.as_array_mut().view().into_dyn(),
-                    pw.as_array_mut().view().into_dyn(),
-                    rb.as_array(),
-                    rt.as_array(),
-                ],
-            );
-            let steps = b.steps(&l)?;
-            let fold_bug = || internal_error("layout fold failed");
-            let bl: Vec<ArrayView2<'_, F>> = l.fold(&rb.as_array()).ok_or_else(fold_bug)?;
-            let tl: Vec<ArrayView2<'_, F>> = l.fold(&rt.as_array()).ok_or_else(fold_bug)?;
-            let mut sv = Sink::new(&l, vw.as_array_mut());
-            let mut sp = Sink::new(&l, pw.as_array_mut());
-            let mut vv = sv.views(&l)?;
-            let mut vp = sp.views(&l)?;
-            let res = run(py, work, |par| {
-                for (j, (((s, x), y), (b, t))) in steps
-                    .iter()
-                    .zip(vv.iter_mut())
-                    .zip(vp.iter_mut())
-                    .zip(bl.iter().zip(tl.iter()))
-                    .enumerate()
-                {
-                    vtrace_core::vtrace(
-                        s,
-                        b.view(),
-                        t.view(),
-                        p,
-                        check_finite,
-                        x.view_mut(),
-                        y.view_mut(),
-                        par,
-                    )
-                    .map_err(|e| (j, e))?;
-                }
-                Ok(())
-            })?;
-            drop((vv, vp));
-            map_sub_err(&l, res)?;
-            sv.finish(&l)?;
-            sp.finish(&l)?;
-        }
+        run_pair(
+            py,
+            &b,
+            a.time_axis,
+            &shape,
+            work,
+            &[&rb, &rt],
+            &mut vw,
+            &mut pw,
+            |s, lp, x, y, par| {
+                vtrace_core::vtrace(s, lp[0].view(), lp[1].view(), p, check_finite, x, y, par)
+            },
+        )?;
     }
     PyTuple::new(py, [vs.into_any(), pg.into_any()])
 }

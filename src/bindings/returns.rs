@@ -8,7 +8,7 @@ use super::layout::Layout;
 use super::threads::run;
 use crate::core::error::fmt_shape;
 use crate::core::timemajor::{self, Steps};
-use crate::core::{stats, CoreError, Real};
+use crate::core::{stats, CoreError, Par, Real};
 use ndarray::{ArrayView2, ArrayViewD, ArrayViewMut2, ArrayViewMutD, Ix1, Ix2, IxDyn};
 use numpy::prelude::*;
 use numpy::{Element, PyArrayDyn, PyReadonlyArrayDyn};
@@ -359,6 +359,85 @@ pub(crate) fn map_sub_err(l: &Layout, r: Result<(), (usize, CoreError)>) -> PyRe
     r.map_err(|(j, e)| core_err_at(e, &|at| l.locate(j, at)))
 }
 
+/// Run a time-major kernel with two outputs (`gae`, `vtrace`) over a call of
+/// any layout, and map its errors to the caller's indices.
+///
+/// `kernel(steps, extra, out_a, out_b, par)` gets `[T, M]` views: `extra`
+/// holds the kernel's further per-step inputs (`vtrace`'s log-probabilities)
+/// in the order given. Plain `[T, N]` C-contiguous calls (a trainer's buffer)
+/// go straight to the kernel; any other layout is folded by the layout
+/// planner into one or more `[T, M]` pieces, outputs copied back only where
+/// their strides need it.
+#[allow(clippy::too_many_arguments)]
+pub(crate) fn run_pair<F, K>(
+    py: Python<'_>,
+    b: &Borrowed<'_, F>,
+    time_axis: usize,
+    shape: &[usize],
+    work: usize,
+    extra: &[&PyReadonlyArrayDyn<'_, F>],
+    out_a: &mut numpy::PyReadwriteArrayDyn<'_, F>,
+    out_b: &mut numpy::PyReadwriteArrayDyn<'_, F>,
+    kernel: K,
+) -> PyResult<()>
+where
+    F: Element + Real + Default,
+    K: Fn(
+            &Steps<'_, F>,
+            &[ArrayView2<'_, F>],
+            ArrayViewMut2<'_, F>,
+            ArrayViewMut2<'_, F>,
+            Par,
+        ) -> Result<(), CoreError>
+        + Sync,
+{
+    let plain_extra: Option<Vec<ArrayView2<'_, F>>> = extra.iter().map(|e| plain_in(e)).collect();
+    if let (Some(steps), Some(ex), Some(mut x), Some(mut y)) = (
+        b.plain(time_axis),
+        plain_extra,
+        plain_out(out_a.as_array_mut()),
+        plain_out(out_b.as_array_mut()),
+    ) {
+        let l = Layout::new(shape, 0);
+        let work = plain_work(&steps, work);
+        let res = run(py, work, |par| {
+            kernel(&steps, &ex, x.view_mut(), y.view_mut(), par).map_err(|e| (0, e))
+        })?;
+        return map_sub_err(&l, res);
+    }
+    let l = {
+        let (oa, ob) = (out_a.as_array_mut(), out_b.as_array_mut());
+        let mut views = vec![oa.view().into_dyn(), ob.view().into_dyn()];
+        views.extend(extra.iter().map(|e| e.as_array()));
+        b.layout(time_axis, &views)
+    };
+    let steps = b.steps(&l)?;
+    let folded: Vec<Vec<ArrayView2<'_, F>>> = extra
+        .iter()
+        .map(|e| l.fold(&e.as_array()).ok_or_else(fold_bug))
+        .collect::<PyResult<_>>()?;
+    let mut sa = Sink::new(&l, out_a.as_array_mut());
+    let mut sb = Sink::new(&l, out_b.as_array_mut());
+    let mut va = sa.views(&l)?;
+    let mut vb = sb.views(&l)?;
+    let res = run(py, work, |par| {
+        for (j, ((s, x), y)) in steps
+            .iter()
+            .zip(va.iter_mut())
+            .zip(vb.iter_mut())
+            .enumerate()
+        {
+            let ex: Vec<ArrayView2<'_, F>> = folded.iter().map(|f| f[j].view()).collect();
+            kernel(s, &ex, x.view_mut(), y.view_mut(), par).map_err(|e| (j, e))?;
+        }
+        Ok(())
+    })?;
+    drop((va, vb));
+    map_sub_err(&l, res)?;
+    sa.finish(&l)?;
+    sb.finish(&l)
+}
+
 /// Discounted returns, time-major.
 ///
 /// Computes, per stream (every axis other than ``time_axis``), from the last
@@ -588,66 +667,17 @@ fn gae_impl<'py, F: Element + Real + Default>(
         let mut aw = adv.try_readwrite().map_err(|e| overlap_err("out[0]", e))?;
         let mut rw = ret.try_readwrite().map_err(|e| overlap_err("out[1]", e))?;
         let work = 2 * shape.iter().product::<usize>();
-        if let (Some(steps), Some(mut x), Some(mut y)) = (
-            b.plain(a.time_axis),
-            plain_out(aw.as_array_mut()),
-            plain_out(rw.as_array_mut()),
-        ) {
-            let l = Layout::new(&shape, 0);
-            let work = plain_work(&steps, work);
-            let res = run(py, work, |par| {
-                timemajor::gae(
-                    &steps,
-                    gamma,
-                    lam,
-                    None,
-                    check_finite,
-                    x.view_mut(),
-                    y.view_mut(),
-                    par,
-                )
-                .map_err(|e| (0, e))
-            })?;
-            map_sub_err(&l, res)?;
-        } else {
-            let l = b.layout(
-                a.time_axis,
-                &[
-                    aw.as_array_mut().view().into_dyn(),
-                    rw.as_array_mut().view().into_dyn(),
-                ],
-            );
-            let steps = b.steps(&l)?;
-            let mut sa = Sink::new(&l, aw.as_array_mut());
-            let mut sr = Sink::new(&l, rw.as_array_mut());
-            let mut va = sa.views(&l)?;
-            let mut vr = sr.views(&l)?;
-            let res = run(py, work, |par| {
-                for (j, ((s, x), y)) in steps
-                    .iter()
-                    .zip(va.iter_mut())
-                    .zip(vr.iter_mut())
-                    .enumerate()
-                {
-                    timemajor::gae(
-                        s,
-                        gamma,
-                        lam,
-                        None,
-                        check_finite,
-                        x.view_mut(),
-                        y.view_mut(),
-                        par,
-                    )
-                    .map_err(|e| (j, e))?;
-                }
-                Ok(())
-            })?;
-            drop((va, vr));
-            map_sub_err(&l, res)?;
-            sa.finish(&l)?;
-            sr.finish(&l)?;
-        }
+        run_pair(
+            py,
+            &b,
+            a.time_axis,
+            &shape,
+            work,
+            &[],
+            &mut aw,
+            &mut rw,
+            |s, _, x, y, par| timemajor::gae(s, gamma, lam, None, check_finite, x, y, par),
+        )?;
         if let Some(eps) = normalize {
             let mut av = aw.as_array_mut();
             run(py, shape.iter().product(), |par| {
