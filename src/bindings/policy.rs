@@ -4,7 +4,7 @@
 
 use super::convert::{as_flags, out_array, out_pair, promote_floats, Floats};
 use super::errors::{core_err_at, fmt_index, internal_error, ShapeError};
-use super::returns::{overlap_err, run_pair, Borrowed, TimeMajorArgs};
+use super::returns::{overlap_err, run_time_major, Borrowed, TimeMajorArgs};
 use super::threads::run;
 use crate::core::error::fmt_shape;
 use crate::core::policy::{self, at_least_1d};
@@ -361,16 +361,15 @@ fn vtrace_impl<'py, F: Element + Real + Default>(
         let mut vw = vs.try_readwrite().map_err(|e| overlap_err("out[0]", e))?;
         let mut pw = pg.try_readwrite().map_err(|e| overlap_err("out[1]", e))?;
         let work = 4 * shape.iter().product::<usize>();
-        run_pair(
+        run_time_major(
             py,
             &b,
             a.time_axis,
             &shape,
             work,
             &[&rb, &rt],
-            &mut vw,
-            &mut pw,
-            |s, lp, x, y, par| {
+            [&mut vw, &mut pw],
+            |s, lp, [x, y], par| {
                 vtrace_core::vtrace(s, lp[0].view(), lp[1].view(), p, check_finite, x, y, par)
             },
         )?;

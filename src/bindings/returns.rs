@@ -359,25 +359,25 @@ pub(crate) fn map_sub_err(l: &Layout, r: Result<(), (usize, CoreError)>) -> PyRe
     r.map_err(|(j, e)| core_err_at(e, &|at| l.locate(j, at)))
 }
 
-/// Run a time-major kernel with two outputs (`gae`, `vtrace`) over a call of
-/// any layout, and map its errors to the caller's indices.
+/// Run a time-major kernel with `N` outputs (`discounted_returns`: 1; `gae`,
+/// `vtrace`: 2) over a call of any layout, and map its errors to the
+/// caller's indices.
 ///
-/// `kernel(steps, extra, out_a, out_b, par)` gets `[T, M]` views: `extra`
-/// holds the kernel's further per-step inputs (`vtrace`'s log-probabilities)
-/// in the order given. Plain `[T, N]` C-contiguous calls (a trainer's buffer)
-/// go straight to the kernel; any other layout is folded by the layout
-/// planner into one or more `[T, M]` pieces, outputs copied back only where
-/// their strides need it.
+/// `kernel(steps, extra, outs, par)` gets `[T, M]` views: `extra` holds the
+/// kernel's further per-step inputs (`vtrace`'s log-probabilities) in the
+/// order given, `outs` the outputs in the order given. Plain `[T, N]`
+/// C-contiguous calls (a trainer's buffer) go straight to the kernel; any
+/// other layout is folded by the layout planner into one or more `[T, M]`
+/// pieces, outputs copied back only where their strides need it.
 #[allow(clippy::too_many_arguments)]
-pub(crate) fn run_pair<F, K>(
+pub(crate) fn run_time_major<F, K, const N: usize>(
     py: Python<'_>,
     b: &Borrowed<'_, F>,
     time_axis: usize,
     shape: &[usize],
     work: usize,
     extra: &[&PyReadonlyArrayDyn<'_, F>],
-    out_a: &mut numpy::PyReadwriteArrayDyn<'_, F>,
-    out_b: &mut numpy::PyReadwriteArrayDyn<'_, F>,
+    mut outs: [&mut numpy::PyReadwriteArrayDyn<'_, F>; N],
     kernel: K,
 ) -> PyResult<()>
 where
@@ -385,29 +385,28 @@ where
     K: Fn(
             &Steps<'_, F>,
             &[ArrayView2<'_, F>],
-            ArrayViewMut2<'_, F>,
-            ArrayViewMut2<'_, F>,
+            [ArrayViewMut2<'_, F>; N],
             Par,
         ) -> Result<(), CoreError>
         + Sync,
 {
     let plain_extra: Option<Vec<ArrayView2<'_, F>>> = extra.iter().map(|e| plain_in(e)).collect();
-    if let (Some(steps), Some(ex), Some(mut x), Some(mut y)) = (
-        b.plain(time_axis),
-        plain_extra,
-        plain_out(out_a.as_array_mut()),
-        plain_out(out_b.as_array_mut()),
-    ) {
+    let plain_outs: Option<Vec<ArrayViewMut2<'_, F>>> = outs
+        .iter_mut()
+        .map(|o| plain_out(o.as_array_mut()))
+        .collect();
+    let plain_outs = plain_outs.and_then(|v| <[ArrayViewMut2<'_, F>; N]>::try_from(v).ok());
+    if let (Some(steps), Some(ex), Some(o)) = (b.plain(time_axis), plain_extra, plain_outs) {
         let l = Layout::new(shape, 0);
         let work = plain_work(&steps, work);
         let res = run(py, work, |par| {
-            kernel(&steps, &ex, x.view_mut(), y.view_mut(), par).map_err(|e| (0, e))
+            kernel(&steps, &ex, o, par).map_err(|e| (0, e))
         })?;
         return map_sub_err(&l, res);
     }
     let l = {
-        let (oa, ob) = (out_a.as_array_mut(), out_b.as_array_mut());
-        let mut views = vec![oa.view().into_dyn(), ob.view().into_dyn()];
+        let arrays: Vec<_> = outs.iter_mut().map(|o| o.as_array_mut()).collect();
+        let mut views: Vec<ArrayViewD<'_, F>> = arrays.iter().map(|a| a.view()).collect();
         views.extend(extra.iter().map(|e| e.as_array()));
         b.layout(time_axis, &views)
     };
@@ -416,26 +415,37 @@ where
         .iter()
         .map(|e| l.fold(&e.as_array()).ok_or_else(fold_bug))
         .collect::<PyResult<_>>()?;
-    let mut sa = Sink::new(&l, out_a.as_array_mut());
-    let mut sb = Sink::new(&l, out_b.as_array_mut());
-    let mut va = sa.views(&l)?;
-    let mut vb = sb.views(&l)?;
-    let res = run(py, work, |par| {
-        for (j, ((s, x), y)) in steps
-            .iter()
-            .zip(va.iter_mut())
-            .zip(vb.iter_mut())
-            .enumerate()
-        {
-            let ex: Vec<ArrayView2<'_, F>> = folded.iter().map(|f| f[j].view()).collect();
-            kernel(s, &ex, x.view_mut(), y.view_mut(), par).map_err(|e| (j, e))?;
+    let mut sinks: Vec<Sink<'_, F>> = outs
+        .iter_mut()
+        .map(|o| Sink::new(&l, o.as_array_mut()))
+        .collect();
+    {
+        // Piece j's output views, one per output.
+        let mut per_out = Vec::with_capacity(N);
+        for sink in sinks.iter_mut() {
+            per_out.push(sink.views(&l)?.into_iter());
         }
-        Ok(())
-    })?;
-    drop((va, vb));
-    map_sub_err(&l, res)?;
-    sa.finish(&l)?;
-    sb.finish(&l)
+        let pieces = (0..steps.len())
+            .map(|_| {
+                let o: Vec<ArrayViewMut2<'_, F>> =
+                    per_out.iter_mut().filter_map(|it| it.next()).collect();
+                <[ArrayViewMut2<'_, F>; N]>::try_from(o)
+                    .map_err(|_| internal_error("layout gave fewer output pieces than steps"))
+            })
+            .collect::<PyResult<Vec<_>>>()?;
+        let res = run(py, work, |par| {
+            for (j, (s, o)) in steps.iter().zip(pieces).enumerate() {
+                let ex: Vec<ArrayView2<'_, F>> = folded.iter().map(|f| f[j].view()).collect();
+                kernel(s, &ex, o, par).map_err(|e| (j, e))?;
+            }
+            Ok(())
+        })?;
+        map_sub_err(&l, res)?;
+    }
+    for sink in sinks {
+        sink.finish(&l)?;
+    }
+    Ok(())
 }
 
 /// Discounted returns, time-major.
@@ -529,30 +539,16 @@ fn returns_impl<'py, F: Element + Real + Default>(
         let b = Borrowed::new(&a)?;
         let mut ow = out.try_readwrite().map_err(|e| overlap_err("out", e))?;
         let work = shape.iter().product::<usize>();
-        if let (Some(steps), Some(mut o)) = (b.plain(a.time_axis), plain_out(ow.as_array_mut())) {
-            let l = Layout::new(&shape, 0);
-            let work = plain_work(&steps, work);
-            let res = run(py, work, |par| {
-                timemajor::discounted_returns(&steps, gamma, check_finite, o.view_mut(), par)
-                    .map_err(|e| (0, e))
-            })?;
-            map_sub_err(&l, res)?;
-            return Ok(out.into_any());
-        }
-        let l = b.layout(a.time_axis, &[ow.as_array_mut().view().into_dyn()]);
-        let steps = b.steps(&l)?;
-        let mut sink = Sink::new(&l, ow.as_array_mut());
-        let mut views = sink.views(&l)?;
-        let res = run(py, work, |par| {
-            for (j, (s, o)) in steps.iter().zip(views.iter_mut()).enumerate() {
-                timemajor::discounted_returns(s, gamma, check_finite, o.view_mut(), par)
-                    .map_err(|e| (j, e))?;
-            }
-            Ok(())
-        })?;
-        drop(views);
-        map_sub_err(&l, res)?;
-        sink.finish(&l)?;
+        run_time_major(
+            py,
+            &b,
+            a.time_axis,
+            &shape,
+            work,
+            &[],
+            [&mut ow],
+            |s, _, [o], par| timemajor::discounted_returns(s, gamma, check_finite, o, par),
+        )?;
     }
     Ok(out.into_any())
 }
@@ -667,16 +663,15 @@ fn gae_impl<'py, F: Element + Real + Default>(
         let mut aw = adv.try_readwrite().map_err(|e| overlap_err("out[0]", e))?;
         let mut rw = ret.try_readwrite().map_err(|e| overlap_err("out[1]", e))?;
         let work = 2 * shape.iter().product::<usize>();
-        run_pair(
+        run_time_major(
             py,
             &b,
             a.time_axis,
             &shape,
             work,
             &[],
-            &mut aw,
-            &mut rw,
-            |s, _, x, y, par| timemajor::gae(s, gamma, lam, None, check_finite, x, y, par),
+            [&mut aw, &mut rw],
+            |s, _, [x, y], par| timemajor::gae(s, gamma, lam, None, check_finite, x, y, par),
         )?;
         if let Some(eps) = normalize {
             let mut av = aw.as_array_mut();
