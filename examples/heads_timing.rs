@@ -25,6 +25,24 @@ fn time<F: FnMut()>(reps: usize, mut f: F) -> f64 {
     t[reps / 2]
 }
 
+/// One call on one thread (`once`, for callgrind), or the median times of
+/// `reps` calls on 1 and 2 threads, printed as `what`.
+fn report(
+    what: &str,
+    once: bool,
+    reps: usize,
+    pool: &rayon::ThreadPool,
+    mut call: impl FnMut(Par) + Send,
+) {
+    if once {
+        call(Par::Seq);
+        return;
+    }
+    let s = time(reps, || call(Par::Seq));
+    let p = pool.install(|| time(reps, || call(Par::Rayon)));
+    println!("{what} f32: 1 thread {s:.2} us, 2 threads {p:.2} us");
+}
+
 fn lcg(s: &mut u64) -> f32 {
     *s = s
         .wrapping_mul(6364136223846793005)
@@ -66,14 +84,16 @@ fn main() {
             )
             .expect("valid input")
         };
-        if once {
-            call(Par::Seq);
-            continue;
-        }
         let reps = if b < 1000 { 20_000 } else { 200 };
-        let s = time(reps, || call(Par::Seq));
-        let p = pool.install(|| time(reps, || call(Par::Rayon)));
-        println!("categorical ({b}, {k}) f32: 1 thread {s:.2} us, 2 threads {p:.2} us");
+        report(
+            &format!("categorical ({b}, {k})"),
+            once,
+            reps,
+            &pool,
+            |par| {
+                call(par);
+            },
+        );
     }
     for &(b, d) in &[(64usize, 6usize), (1_000_000, 6)] {
         if only.as_deref().is_some_and(|o| o != "gauss") {
@@ -102,13 +122,9 @@ fn main() {
             )
             .expect("valid input")
         };
-        if once {
-            call(Par::Seq);
-            continue;
-        }
         let reps = if b < 1000 { 20_000 } else { 50 };
-        let s = time(reps, || call(Par::Seq));
-        let p = pool.install(|| time(reps, || call(Par::Rayon)));
-        println!("gaussian ({b}, {d}) f32: 1 thread {s:.2} us, 2 threads {p:.2} us");
+        report(&format!("gaussian ({b}, {d})"), once, reps, &pool, |par| {
+            call(par);
+        });
     }
 }
