@@ -271,6 +271,7 @@ pub fn clipped_surrogate<F: Real>(
 }
 
 /// The per-call constants of the block kernel.
+#[derive(Clone, Copy)]
 struct Consts {
     lo: f64,
     hi: f64,
@@ -402,6 +403,9 @@ fn block_kernel<F: Real>(
 ) -> (Partial, bool) {
     let n = g.len();
     let (nl, ol, ad) = (&nl[..n], &ol[..n], &ad[..n]);
+    // The constants in locals: read through the reference inside the
+    // branches of `element`, LLVM loads them per lane with masked gathers.
+    let c = &{ *c };
     let zero = F64x8::splat(0.0);
     let (mut a_obj, mut a_kl, mut a_ratio, mut a_clipped) = (zero, zero, zero, zero);
     let mut a_rmax = [f64::NEG_INFINITY; LANES];
