@@ -429,3 +429,62 @@ def test_time_axis_out_of_range():
         rollscan.discounted_returns(np.zeros((4, 3)), gamma=0.9, time_axis=2)
     with pytest.raises((ValueError, IndexError)):
         rollscan.gae(np.zeros((4, 3)), np.zeros((4, 3)), gamma=0.9, lam=0.9, time_axis=-3)
+
+
+# --------------------------------------------------------------------------
+# What an error leaves in out=
+# --------------------------------------------------------------------------
+
+# The README's rule: arguments (shapes, dtypes, gamma, lam, lengths, clip
+# levels) are checked before anything is written, so those errors leave
+# `out` as it was; a non-finite value, or a truncated step without
+# next_values, is found while the kernel runs and can leave it partly
+# written. Common practice, no source.
+
+
+def _bad_argument_calls(out1, out2):
+    t, n = out1.shape
+    r = np.ones((t, n))
+    v = np.zeros((t, n))
+    return [
+        (ShapeError, lambda: rollscan.gae(r, v[:-1], gamma=0.9, lam=0.9, out=(out1, out2))),
+        (InputError, lambda: rollscan.gae(r, v, gamma=1.5, lam=0.9, out=(out1, out2))),
+        (
+            ShapeError,
+            lambda: rollscan.discounted_returns(r, gamma=0.9, bootstrap=np.zeros(n + 1), out=out1),
+        ),
+        (
+            InputError,
+            lambda: ragged.discounted_returns(
+                r.ravel(), np.array([t * n - 1]), gamma=0.9, out=out1.ravel()
+            ),
+        ),
+        (
+            InputError,
+            lambda: rollscan.vtrace(v, v, r, v, gamma=0.9, rho_bar=-1.0, out=(out1, out2)),
+        ),
+    ]
+
+
+def test_argument_errors_leave_out_untouched():
+    out1, out2 = np.full((64, 300), 7.0), np.full((64, 300), 7.0)
+    for i, (err, call) in enumerate(_bad_argument_calls(out1, out2)):
+        with pytest.raises(err):
+            call()
+        assert (out1 == 7.0).all() and (out2 == 7.0).all(), f"call {i} wrote to out"
+
+
+def test_errors_found_while_running_still_name_the_first_index():
+    # These checks run inside the kernel: the error still names the first
+    # offending element, whatever the kernel already wrote.
+    r = np.ones((64, 300))
+    r[10, 5] = np.nan
+    out = (np.empty_like(r), np.empty_like(r))
+    with pytest.raises(InputError) as ei:
+        rollscan.gae(r, np.zeros_like(r), gamma=0.9, lam=0.9, out=out)
+    assert_names_index(_msg(ei), "rewards", (10, 5))
+    tr = np.zeros(r.shape, bool)
+    tr[3, 7] = tr[20, 1] = True
+    with pytest.raises(InputError) as ei:
+        rollscan.gae(np.ones_like(r), np.zeros_like(r), gamma=0.9, lam=0.9, truncated=tr, out=out)
+    assert_names_index(_msg(ei), "truncated", (3, 7))
