@@ -488,3 +488,44 @@ def test_errors_found_while_running_still_name_the_first_index():
     with pytest.raises(InputError) as ei:
         rollscan.gae(np.ones_like(r), np.zeros_like(r), gamma=0.9, lam=0.9, truncated=tr, out=out)
     assert_names_index(_msg(ei), "truncated", (3, 7))
+
+
+# --------------------------------------------------------------------------
+# Numeric flags
+# --------------------------------------------------------------------------
+
+
+@pytest.mark.parametrize("dtype", [np.int8, np.uint8, np.int64, np.float32, np.float64])
+def test_numeric_flags_of_zero_and_one_act_as_bool(dtype):
+    rng = np.random.default_rng(5)
+    r = rng.normal(size=(40, 3))
+    te = rng.random((40, 3)) < 0.2
+    want = rollscan.discounted_returns(r, te, gamma=0.9)
+    got = rollscan.discounted_returns(r, te.astype(dtype), gamma=0.9)
+    np.testing.assert_array_equal(got, want)
+
+
+@pytest.mark.parametrize("bad", [2, -1, 0.5, np.nan])
+def test_numeric_flags_other_than_zero_and_one_are_refused(bad):
+    # The stored-rollout reader refuses such flag columns too (same rule).
+    te = np.zeros((6, 3))
+    te[4, 2] = bad
+    te[5, 0] = bad
+    with pytest.raises(InputError) as ei:
+        rollscan.discounted_returns(np.ones((6, 3)), te, gamma=0.9)
+    assert_names_index(_msg(ei), "terminated", (4, 2))
+    with pytest.raises(InputError) as ei:
+        ragged.gae(
+            np.ones(3),
+            np.zeros(3),
+            np.array([1, 2]),
+            gamma=0.9,
+            lam=0.9,
+            terminal=np.array([1.0, bad]),
+        )
+    assert_names_index(_msg(ei), "terminal", (1,))
+    mask = np.ones((2, 3))
+    mask[1, 1] = bad
+    with pytest.raises(InputError) as ei:
+        rollscan.categorical_entropy(np.zeros((2, 3)), mask=mask)
+    assert_names_index(_msg(ei), "mask", (1, 1))

@@ -715,7 +715,7 @@ def test_seed_and_dtype_type_errors():
         rollscan.gaussian_log_prob(x, np.array(["a", "b", "c"]), x)
     with pytest.raises(TypeError, match="dtype"):
         rollscan.categorical_entropy(x, mask=np.array([["a"] * 3] * 2))
-    # int masks are "non-zero is allowed" (as gymnasium's int8 action masks)
+    # int8 0/1 masks (as environments often emit them) act as bool masks
     np.testing.assert_array_equal(
         rollscan.categorical_entropy(x, mask=np.array([1, 0, 1], np.int8)),
         rollscan.categorical_entropy(x[:, [0, 2]]),

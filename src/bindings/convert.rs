@@ -2,7 +2,7 @@
 //! `out=` validation. Everything here runs attached to the interpreter and
 //! returns NumPy arrays whose views the kernels then read in place.
 
-use super::errors::ShapeError;
+use super::errors::{fmt_index, InputError, ShapeError};
 use crate::core::error::fmt_shape;
 use numpy::prelude::*;
 use numpy::{dtype, Element, PyArrayDescr, PyArrayDyn, PyUntypedArray};
@@ -124,8 +124,10 @@ pub fn cast_float<'py, F: Element>(
     to_dtype::<F>(py, &a)
 }
 
-/// A boolean flag array. Integer and float arrays are accepted as
-/// "non-zero is True".
+/// A boolean flag array. Integer and float arrays are accepted when every
+/// element is 0 or 1 (as the stored-rollout reader requires of flag
+/// columns): anything else, NaN included, is far more likely a wrong array
+/// than a flag, so it is an `InputError` naming the first such element.
 pub fn as_flags<'py>(
     py: Python<'py>,
     name: &str,
@@ -139,11 +141,29 @@ pub fn as_flags<'py>(
     match d.kind() {
         b'i' | b'u' | b'f' | b'b' => {
             let np = py.import("numpy")?;
-            let b = np.getattr("not_equal")?.call1((&a, 0))?;
-            Ok(b.cast_into::<PyArrayDyn<bool>>()?)
+            let set = np.getattr("not_equal")?.call1((&a, 0))?;
+            let not_one = np.getattr("not_equal")?.call1((&a, 1))?;
+            let bad = np.getattr("logical_and")?.call1((&set, not_one))?;
+            if bad.call_method0("any")?.is_truthy()? {
+                let flat: usize = np.getattr("argmax")?.call1((&bad,))?.extract()?;
+                let ix: Vec<usize> = np
+                    .getattr("unravel_index")?
+                    .call1((flat, a.shape().to_vec()))?
+                    .extract()?;
+                let value = a.call_method1("item", (flat,))?.str()?.to_string();
+                let at = if ix.is_empty() {
+                    String::new()
+                } else {
+                    fmt_index(&ix)
+                };
+                return Err(InputError::new_err(format!(
+                    "{name}{at} = {value} is not a flag: numeric flags must be 0 or 1 (or pass a bool array)"
+                )));
+            }
+            Ok(set.cast_into::<PyArrayDyn<bool>>()?)
         }
         _ => Err(PyTypeError::new_err(format!(
-            "{name} has unsupported dtype {}; flags must be bool (or integer / float, non-zero meaning True)",
+            "{name} has unsupported dtype {}; flags must be bool (or integer / float arrays of 0 and 1)",
             dtype_str(&d)
         ))),
     }
