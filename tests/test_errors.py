@@ -345,14 +345,16 @@ def test_all_false_truncated_needs_no_next_values():
 
 
 def test_normalize_documented_value_errors():
-    # documented in the normalize docstring: ddof not below the number of
-    # selected elements, and zero spread with eps=0
+    # documented in the normalize docstring: ddof negative or not below the
+    # number of selected elements, and zero spread with eps=0
     with pytest.raises(InputError):
         rollscan.normalize(np.arange(3.0), ddof=3)
     with pytest.raises(InputError):
         rollscan.normalize(np.arange(6.0), ddof=2, mask=np.array([1, 1, 0, 0, 0, 0], dtype=bool))
     with pytest.raises(InputError):
         rollscan.normalize(np.ones(4), eps=0.0)
+    with pytest.raises(InputError, match="ddof"):
+        rollscan.normalize(np.arange(3.0), ddof=-1)
 
 
 # --------------------------------------------------------------------------

@@ -703,8 +703,9 @@ fn gae_impl<'py, F: Element + Real + Default>(
 ///
 /// Raises:
 ///     ShapeError: mask shape differs from x.
-///     InputError: NaN/inf in x (when check_finite), ``ddof`` not below the
-///         number of selected elements, zero spread with ``eps=0``.
+///     InputError: NaN/inf in x (when check_finite), a negative ``ddof`` or
+///         one not below the number of selected elements, zero spread with
+///         ``eps=0``.
 ///
 /// Example:
 ///     >>> import numpy as np, rollscan
@@ -716,11 +717,17 @@ pub fn normalize<'py>(
     py: Python<'py>,
     x: &Bound<'py, PyAny>,
     eps: f64,
-    ddof: usize,
+    ddof: i64,
     mask: Option<&Bound<'py, PyAny>>,
     check_finite: bool,
     out: Option<&Bound<'py, PyAny>>,
 ) -> PyResult<Bound<'py, PyAny>> {
+    let ddof = usize::try_from(ddof).map_err(|_| {
+        core_err(CoreError::input(
+            "ddof",
+            format!("must be >= 0, got {ddof}"),
+        ))
+    })?;
     match promote_floats(py, &[("x", Some(x))])? {
         Floats::F32(mut f) => {
             normalize_impl::<f32>(py, x, f.remove(0), eps, ddof, mask, check_finite, out)
