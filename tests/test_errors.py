@@ -531,3 +531,15 @@ def test_numeric_flags_other_than_zero_and_one_are_refused(bad):
     with pytest.raises(InputError) as ei:
         rollscan.categorical_entropy(np.zeros((2, 3)), mask=mask)
     assert_names_index(_msg(ei), "mask", (1, 1))
+
+
+def test_out_overlapping_an_input_or_the_other_output():
+    r = np.ones((5, 3))
+    with pytest.raises(InputError, match="out overlaps"):
+        rollscan.discounted_returns(r, gamma=0.9, out=r)
+    o = np.zeros((5, 3))
+    with pytest.raises(InputError, match=r"out\[1\] overlaps"):
+        rollscan.gae(r, np.zeros((5, 3)), gamma=0.9, lam=0.9, out=(o, o))
+    # normalize documents in-place support: out=x is allowed
+    x = np.arange(4.0)
+    assert rollscan.normalize(x, out=x) is x

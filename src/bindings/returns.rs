@@ -557,7 +557,7 @@ pub(crate) fn overlap_err(name: &str, e: numpy::BorrowError) -> PyErr {
     match e {
         numpy::BorrowError::NotWriteable => pyo3::exceptions::PyTypeError::new_err(format!("{name} is read-only")),
         _ => super::errors::InputError::new_err(format!(
-            "{name} overlaps an input array; this kernel does not work in place, pass a separate output"
+            "{name} overlaps an input or another output; this kernel does not work in place, pass a separate output array"
         )),
     }
 }
