@@ -543,3 +543,12 @@ def test_out_overlapping_an_input_or_the_other_output():
     # normalize documents in-place support: out=x is allowed
     x = np.arange(4.0)
     assert rollscan.normalize(x, out=x) is x
+
+
+def test_heads_name_an_overlapping_output_the_same_way():
+    logits = np.zeros((4, 3))
+    o = np.zeros(4)
+    with pytest.raises(InputError, match=r"out\[1\] overlaps"):
+        rollscan.categorical_log_prob_entropy(logits, np.zeros(4, np.int64), out=(o, o))
+    with pytest.raises(InputError, match=r"out\[0\] overlaps"):
+        rollscan.gaussian_score(logits, np.zeros(3), logits.copy(), out=(logits, np.zeros((4, 3))))

@@ -43,6 +43,20 @@ pub fn core_err_at(e: CoreError, locate: &dyn Fn(At) -> String) -> PyErr {
     }
 }
 
+/// Why an output could not be borrowed for writing: read-only (`TypeError`),
+/// or sharing memory with an input or another output of a kernel that does
+/// not work in place (`InputError`).
+pub fn overlap_err(name: &str, e: numpy::BorrowError) -> PyErr {
+    match e {
+        numpy::BorrowError::NotWriteable => {
+            pyo3::exceptions::PyTypeError::new_err(format!("{name} is read-only"))
+        }
+        _ => InputError::new_err(format!(
+            "{name} overlaps an input or another output; this kernel does not work in place, pass a separate output array"
+        )),
+    }
+}
+
 /// A Rust panic is a bug in rollscan, never validation: say so.
 pub fn internal_error(what: &str) -> PyErr {
     PyRuntimeError::new_err(format!(

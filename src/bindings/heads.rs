@@ -6,7 +6,7 @@
 use super::convert::{
     as_flags, as_indices, cast_float, out_array, out_pair, promote_floats, type_name, Floats,
 };
-use super::errors::{core_err_at, fmt_index, InputError, ShapeError};
+use super::errors::{core_err_at, fmt_index, overlap_err, InputError, ShapeError};
 use super::threads::run;
 use crate::core::error::fmt_shape;
 use crate::core::float::Real;
@@ -61,14 +61,9 @@ impl<'py, T: Element> Rw<'py, T> {
         if a.len() == 0 {
             return Ok(Rw::Empty(empty(a.shape())));
         }
-        a.try_readwrite().map(Rw::Py).map_err(|e| match e {
-            numpy::BorrowError::NotWriteable => {
-                PyTypeError::new_err(format!("{name} is read-only"))
-            }
-            _ => InputError::new_err(format!(
-                "{name} shares memory with an input; this kernel does not work in place"
-            )),
-        })
+        a.try_readwrite()
+            .map(Rw::Py)
+            .map_err(|e| overlap_err(name, e))
     }
 
     fn view(&mut self) -> ArrayViewMutD<'_, T> {

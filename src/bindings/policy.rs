@@ -3,8 +3,8 @@
 //! `ReturnScaler`, `EpisodeTracker`).
 
 use super::convert::{as_flags, out_array, out_pair, promote_floats, Floats};
-use super::errors::{core_err_at, fmt_index, internal_error, ShapeError};
-use super::returns::{overlap_err, run_time_major, Borrowed, TimeMajorArgs};
+use super::errors::{core_err_at, fmt_index, internal_error, overlap_err, ShapeError};
+use super::returns::{run_time_major, Borrowed, TimeMajorArgs};
 use super::threads::run;
 use crate::core::error::fmt_shape;
 use crate::core::policy::{self, at_least_1d};

@@ -3,8 +3,7 @@
 use super::convert::{
     as_flags, as_indices, cast_float, out_array, out_pair, promote_floats, Floats,
 };
-use super::errors::{core_err, internal_error, ShapeError};
-use super::returns::overlap_err;
+use super::errors::{core_err, internal_error, overlap_err, ShapeError};
 use super::threads::run;
 use crate::core::error::fmt_shape;
 use crate::core::ragged::{self, Pieces};

@@ -3,7 +3,7 @@
 use super::convert::{
     as_flags, cast_float, norm_axis, out_array, out_pair, promote_floats, Floats,
 };
-use super::errors::{core_err, core_err_at, internal_error, ShapeError};
+use super::errors::{core_err, core_err_at, internal_error, overlap_err, ShapeError};
 use super::layout::Layout;
 use super::threads::run;
 use crate::core::error::fmt_shape;
@@ -551,15 +551,6 @@ fn returns_impl<'py, F: Element + Real + Default>(
         )?;
     }
     Ok(out.into_any())
-}
-
-pub(crate) fn overlap_err(name: &str, e: numpy::BorrowError) -> PyErr {
-    match e {
-        numpy::BorrowError::NotWriteable => pyo3::exceptions::PyTypeError::new_err(format!("{name} is read-only")),
-        _ => super::errors::InputError::new_err(format!(
-            "{name} overlaps an input or another output; this kernel does not work in place, pass a separate output array"
-        )),
-    }
 }
 
 /// Generalised advantage estimation (Schulman et al. 2016, eq. 16), time-major.
