@@ -198,7 +198,7 @@ pub fn out_array<'py, F: Element>(
     shape: &[usize],
 ) -> PyResult<Bound<'py, PyArrayDyn<F>>> {
     let o = match out {
-        None => return Ok(PyArrayDyn::<F>::zeros(py, shape, false)),
+        None => return fresh::<F>(py, shape),
         Some(o) => o,
     };
     let a = o.cast::<PyUntypedArray>().map_err(|_| {
@@ -227,6 +227,43 @@ pub fn out_array<'py, F: Element>(
         return Err(PyTypeError::new_err(format!("{name} is read-only")));
     }
     Ok(a.cast::<PyArrayDyn<F>>()?.clone())
+}
+
+/// Fresh outputs of at least this many bytes come from `numpy.empty`: every
+/// kernel writes each element of its outputs, so zero-filling them (a memset,
+/// or page faults on fresh pages) would be wasted work, about a fifth of a
+/// (2048, 64) `gae` call. Below it the zero fill costs less than the Python
+/// call to `numpy.empty`.
+const EMPTY_FROM_BYTES: usize = 1 << 16;
+
+/// Whether fresh outputs are filled with all-ones bytes (NaN for floats, -1
+/// for integers) before a kernel runs, so that a test comparing them with
+/// zero-filled `out=` buffers catches any element a kernel leaves unwritten.
+/// Set by the environment variable `ROLLSCAN_DEBUG_POISON_OUTPUTS=1`, read
+/// once; for the test suite, never for speed.
+pub fn poison_outputs() -> bool {
+    static POISON: std::sync::OnceLock<bool> = std::sync::OnceLock::new();
+    *POISON
+        .get_or_init(|| std::env::var_os("ROLLSCAN_DEBUG_POISON_OUTPUTS").is_some_and(|v| v == "1"))
+}
+
+/// A new C-ordered output array (see [`EMPTY_FROM_BYTES`], [`poison_outputs`]).
+fn fresh<'py, F: Element>(py: Python<'py>, shape: &[usize]) -> PyResult<Bound<'py, PyArrayDyn<F>>> {
+    let bytes = shape.iter().product::<usize>() * std::mem::size_of::<F>();
+    let poison = poison_outputs();
+    if bytes < EMPTY_FROM_BYTES && !poison {
+        return Ok(PyArrayDyn::<F>::zeros(py, shape, false));
+    }
+    let np = py.import("numpy")?;
+    let a = np
+        .getattr("empty")?
+        .call1((shape.to_vec(), dtype::<F>(py)))?
+        .cast_into::<PyArrayDyn<F>>()?;
+    if poison {
+        a.call_method1("view", ("uint8",))?
+            .call_method1("fill", (0xffu8,))?;
+    }
+    Ok(a)
 }
 
 /// The two optional outputs of a two-result kernel.

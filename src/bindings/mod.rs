@@ -22,5 +22,13 @@ fn _core(m: &Bound<'_, PyModule>) -> PyResult<()> {
     ragged::register(m)?;
     policy::register(m)?;
     heads::register(m)?;
+    m.add_function(wrap_pyfunction!(_debug_outputs_poisoned, m)?)?;
     Ok(())
+}
+
+/// Whether ``ROLLSCAN_DEBUG_POISON_OUTPUTS=1`` is in force (fresh outputs
+/// start as all-ones bytes); for the test suite.
+#[pyfunction]
+fn _debug_outputs_poisoned() -> bool {
+    convert::poison_outputs()
 }
