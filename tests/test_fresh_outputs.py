@@ -126,6 +126,23 @@ SCRIPT = textwrap.dedent(
                     x, log_std, act, out=o), row)
                 both("squashed_gaussian_sample", lambda o: rollscan.squashed_gaussian_sample(
                     x, log_std, seed=5, low=-2.0, high=3.0, out=o), full * 2)
+    # The normalisers allocate through the same path (no out= to compare
+    # with: their results are finite wherever written, and chunking must not
+    # change them).
+    rm = rollscan.RunningMoments((64,))
+    x = rng.normal(size=(3000, 64))
+    rm.update(x)
+    z = rm.normalize(x)
+    assert np.isfinite(z).all()
+    np.testing.assert_allclose(z, (x - rm.mean) / (rm.std + 1e-8), rtol=1e-12, atol=1e-12)
+    rr = rng.normal(size=(3000, 64))
+    dd = rng.random((3000, 64)) < 0.01
+    whole = rollscan.ReturnScaler(64, gamma=0.99).scale(rr, dd)
+    sc = rollscan.ReturnScaler(64, gamma=0.99)
+    parts = np.concatenate([sc.scale(rr[i:i + 7], dd[i:i + 7]) for i in range(0, 3000, 7)])
+    assert np.isfinite(whole).all()
+    assert np.array_equal(whole, parts)
+    checked += 2
     print("checked", checked)
     """
 )
