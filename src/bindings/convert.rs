@@ -138,35 +138,114 @@ pub fn as_flags<'py>(
         return Ok(b.clone());
     }
     let d = a.dtype();
-    match d.kind() {
-        b'i' | b'u' | b'f' | b'b' => {
-            let np = py.import("numpy")?;
-            let set = np.getattr("not_equal")?.call1((&a, 0))?;
-            let not_one = np.getattr("not_equal")?.call1((&a, 1))?;
-            let bad = np.getattr("logical_and")?.call1((&set, not_one))?;
-            if bad.call_method0("any")?.is_truthy()? {
-                let flat: usize = np.getattr("argmax")?.call1((&bad,))?.extract()?;
-                let ix: Vec<usize> = np
-                    .getattr("unravel_index")?
-                    .call1((flat, a.shape().to_vec()))?
-                    .extract()?;
-                let value = a.call_method1("item", (flat,))?.str()?.to_string();
-                let at = if ix.is_empty() {
-                    String::new()
-                } else {
-                    fmt_index(&ix)
-                };
-                return Err(InputError::new_err(format!(
-                    "{name}{at} = {value} is not a flag: numeric flags must be 0 or 1 (or pass a bool array)"
-                )));
-            }
-            Ok(set.cast_into::<PyArrayDyn<bool>>()?)
-        }
-        _ => Err(PyTypeError::new_err(format!(
+    if !matches!(d.kind(), b'i' | b'u' | b'f') {
+        return Err(PyTypeError::new_err(format!(
             "{name} has unsupported dtype {}; flags must be bool (or integer / float arrays of 0 and 1)",
             dtype_str(&d)
-        ))),
+        )));
     }
+    // The common C-contiguous cases in one Rust pass over the values.
+    macro_rules! try_types {
+        ($($t:ty),*) => {$(
+            if let Ok(x) = a.cast::<PyArrayDyn<$t>>() {
+                if let Some(f) = flags_from_slice(py, name, x)? {
+                    return Ok(f);
+                }
+            }
+        )*};
+    }
+    try_types!(f32, f64, u8, i8, i32, i64, u16, i16, u32, u64);
+    // Any other layout or dtype: NumPy's comparisons (which read any strides).
+    let np = py.import("numpy")?;
+    let set = np.getattr("not_equal")?.call1((&a, 0))?;
+    let not_one = np.getattr("not_equal")?.call1((&a, 1))?;
+    let bad = np.getattr("logical_and")?.call1((&set, not_one))?;
+    if bad.call_method0("any")?.is_truthy()? {
+        let flat: usize = np.getattr("argmax")?.call1((&bad,))?.extract()?;
+        return Err(not_a_flag(name, &a, a.shape(), flat));
+    }
+    Ok(set.cast_into::<PyArrayDyn<bool>>()?)
+}
+
+/// The error for the element at C-order position `flat` of a flag array.
+fn not_a_flag(name: &str, a: &Bound<'_, PyUntypedArray>, shape: &[usize], flat: usize) -> PyErr {
+    let value = a
+        .call_method1("item", (flat,))
+        .and_then(|v| v.str().map(|s| s.to_string()))
+        .unwrap_or_else(|_| "?".into());
+    let at = if shape.is_empty() {
+        String::new()
+    } else {
+        let mut ix = vec![0usize; shape.len()];
+        let mut rest = flat;
+        for (k, &n) in shape.iter().enumerate().rev() {
+            ix[k] = rest % n.max(1);
+            rest /= n.max(1);
+        }
+        fmt_index(&ix)
+    };
+    InputError::new_err(format!(
+        "{name}{at} = {value} is not a flag: numeric flags must be 0 or 1 (or pass a bool array)"
+    ))
+}
+
+/// A number that may stand for a flag: 0 (False) or 1 (True).
+trait FlagValue: Element + Copy {
+    fn is_zero(self) -> bool;
+    fn is_one(self) -> bool;
+}
+
+macro_rules! flag_value {
+    ($zero:expr, $one:expr; $($t:ty),*) => {$(
+        impl FlagValue for $t {
+            #[inline(always)]
+            fn is_zero(self) -> bool {
+                self == $zero
+            }
+            #[inline(always)]
+            fn is_one(self) -> bool {
+                self == $one
+            }
+        }
+    )*};
+}
+flag_value!(0.0, 1.0; f32, f64);
+flag_value!(0, 1; u8, i8, i16, u16, i32, u32, i64, u64);
+
+/// For a C-contiguous `x`: `x != 0` as a new bool array, after checking in
+/// the same pass that every element is 0 or 1. `None` for other layouts.
+fn flags_from_slice<'py, T: FlagValue>(
+    py: Python<'py>,
+    name: &str,
+    x: &Bound<'py, PyArrayDyn<T>>,
+) -> PyResult<Option<Bound<'py, PyArrayDyn<bool>>>> {
+    if !x.is_c_contiguous() {
+        return Ok(None);
+    }
+    let ro = x.readonly();
+    let Ok(s) = ro.as_slice() else {
+        return Ok(None);
+    };
+    // Branch-free, so the loop vectorises; the bad element is looked for only
+    // once there is one.
+    let mut bad = false;
+    let flags: Vec<bool> = s
+        .iter()
+        .map(|&e| {
+            bad |= !(e.is_zero() | e.is_one());
+            !e.is_zero()
+        })
+        .collect();
+    if bad {
+        let flat = s
+            .iter()
+            .position(|e| !(e.is_zero() || e.is_one()))
+            .unwrap_or(0);
+        return Err(not_a_flag(name, x.as_untyped(), x.shape(), flat));
+    }
+    let arr = ndarray::ArrayD::from_shape_vec(x.shape(), flags)
+        .map_err(|_| super::errors::internal_error("flag array shape"))?;
+    Ok(Some(arr.into_pyarray(py)))
 }
 
 /// An integer array of any integer dtype, as int64.
