@@ -503,8 +503,11 @@ def test_numeric_flags_of_zero_and_one_act_as_bool(dtype):
     r = rng.normal(size=(40, 3))
     te = rng.random((40, 3)) < 0.2
     want = rollscan.discounted_returns(r, te, gamma=0.9)
-    got = rollscan.discounted_returns(r, te.astype(dtype), gamma=0.9)
-    np.testing.assert_array_equal(got, want)
+    np.testing.assert_array_equal(rollscan.discounted_returns(r, te.astype(dtype), gamma=0.9), want)
+    # other layouts read the same flags as their bool conversion
+    for flags in (np.asfortranarray(te.astype(dtype)), te.astype(dtype)[::-1]):
+        got = rollscan.discounted_returns(r, flags, gamma=0.9)
+        np.testing.assert_array_equal(got, rollscan.discounted_returns(r, flags != 0, gamma=0.9))
 
 
 @pytest.mark.parametrize("bad", [2, -1, 0.5, np.nan])
@@ -513,9 +516,12 @@ def test_numeric_flags_other_than_zero_and_one_are_refused(bad):
     te = np.zeros((6, 3))
     te[4, 2] = bad
     te[5, 0] = bad
-    with pytest.raises(InputError) as ei:
-        rollscan.discounted_returns(np.ones((6, 3)), te, gamma=0.9)
-    assert_names_index(_msg(ei), "terminated", (4, 2))
+    # C-contiguous (one Rust pass), Fortran order and a strided view (NumPy's
+    # comparisons) name the same first element in C order.
+    for layout in (te, np.asfortranarray(te), np.repeat(te, 2, axis=1)[:, ::2]):
+        with pytest.raises(InputError) as ei:
+            rollscan.discounted_returns(np.ones((6, 3)), layout, gamma=0.9)
+        assert_names_index(_msg(ei), "terminated", (4, 2))
     with pytest.raises(InputError) as ei:
         ragged.gae(
             np.ones(3),
