@@ -2,7 +2,7 @@
 //! `out=` validation. Everything here runs attached to the interpreter and
 //! returns NumPy arrays whose views the kernels then read in place.
 
-use super::errors::{fmt_index, InputError, ShapeError};
+use super::errors::{fmt_index, unravel, InputError, ShapeError};
 use crate::core::error::fmt_shape;
 use numpy::prelude::*;
 use numpy::{dtype, Element, PyArrayDescr, PyArrayDyn, PyUntypedArray};
@@ -176,13 +176,7 @@ fn not_a_flag(name: &str, a: &Bound<'_, PyUntypedArray>, shape: &[usize], flat: 
     let at = if shape.is_empty() {
         String::new()
     } else {
-        let mut ix = vec![0usize; shape.len()];
-        let mut rest = flat;
-        for (k, &n) in shape.iter().enumerate().rev() {
-            ix[k] = rest % n.max(1);
-            rest /= n.max(1);
-        }
-        fmt_index(&ix)
+        fmt_index(&unravel(flat, shape))
     };
     InputError::new_err(format!(
         "{name}{at} = {value} is not a flag: numeric flags must be 0 or 1 (or pass a bool array)"

@@ -64,6 +64,18 @@ pub fn internal_error(what: &str) -> PyErr {
     ))
 }
 
+/// The index tuple of C-order (row-major) position `i` in `shape`.
+pub fn unravel(mut i: usize, shape: &[usize]) -> Vec<usize> {
+    let mut ix = vec![0; shape.len()];
+    for (k, &d) in shape.iter().enumerate().rev() {
+        if d > 0 {
+            ix[k] = i % d;
+            i /= d;
+        }
+    }
+    ix
+}
+
 /// `"[3, 1]"` for an index tuple.
 pub fn fmt_index(ix: &[usize]) -> String {
     format!(

@@ -6,7 +6,7 @@
 use super::convert::{
     as_flags, as_indices, cast_float, out_array, out_pair, promote_floats, type_name, Floats,
 };
-use super::errors::{core_err_at, fmt_index, overlap_err, InputError, ShapeError};
+use super::errors::{core_err_at, fmt_index, overlap_err, unravel, InputError, ShapeError};
 use super::threads::run;
 use crate::core::error::fmt_shape;
 use crate::core::float::Real;
@@ -89,20 +89,10 @@ struct Locate<'s> {
 
 impl Locate<'_> {
     fn index(&self, arg: &str, at: At) -> String {
-        let unravel = |mut r: usize| {
-            let mut ix = vec![0usize; self.batch.len()];
-            for (i, &n) in self.batch.iter().enumerate().rev() {
-                if n > 0 {
-                    ix[i] = r % n;
-                    r /= n;
-                }
-            }
-            ix
-        };
         let (full, col) = match at {
-            At::Flat(r) => (unravel(r), false),
+            At::Flat(r) => (unravel(r, self.batch), false),
             At::RowCol(r, c) => {
-                let mut ix = unravel(r);
+                let mut ix = unravel(r, self.batch);
                 ix.push(c);
                 (ix, true)
             }

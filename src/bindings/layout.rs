@@ -4,7 +4,7 @@
 //! fold (for example time in the middle of three axes), the outermost stream
 //! axes are split off instead and the core runs once per sub-block.
 
-use super::errors::fmt_index;
+use super::errors::{fmt_index, unravel};
 use crate::core::At;
 use ndarray::{
     ArrayView1, ArrayView2, ArrayViewD, ArrayViewMut2, ArrayViewMutD, Axis, Ix1, Ix2, IxDyn,
@@ -18,17 +18,6 @@ pub struct Layout {
     perm: Vec<usize>,
     /// Number of leading stream axes split off (0: one fold covers all).
     split: usize,
-}
-
-fn unravel(mut i: usize, shape: &[usize]) -> Vec<usize> {
-    let mut ix = vec![0; shape.len()];
-    for (k, &d) in shape.iter().enumerate().rev() {
-        if d > 0 {
-            ix[k] = i % d;
-            i /= d;
-        }
-    }
-    ix
 }
 
 /// Merge every axis from `first` on into one, fastest along the last (C

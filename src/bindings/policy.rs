@@ -3,7 +3,7 @@
 //! `ReturnScaler`, `EpisodeTracker`).
 
 use super::convert::{as_flags, out_array, out_pair, promote_floats, Floats};
-use super::errors::{core_err_at, fmt_index, internal_error, overlap_err, ShapeError};
+use super::errors::{core_err_at, fmt_index, internal_error, overlap_err, unravel, ShapeError};
 use super::returns::{run_time_major, Borrowed, TimeMajorArgs};
 use super::threads::run;
 use crate::core::error::fmt_shape;
@@ -19,17 +19,6 @@ use pyo3::types::PyTuple;
 
 fn some<'a, 'py>(o: Option<&'a Bound<'py, PyAny>>) -> Option<&'a Bound<'py, PyAny>> {
     o.filter(|o| !o.is_none())
-}
-
-fn unravel(mut i: usize, shape: &[usize]) -> Vec<usize> {
-    let mut ix = vec![0; shape.len()];
-    for (k, &d) in shape.iter().enumerate().rev() {
-        if d > 0 {
-            ix[k] = i % d;
-            i /= d;
-        }
-    }
-    ix
 }
 
 /// Index text in the caller's shape: flat indices are unravelled (row-major),
