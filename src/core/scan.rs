@@ -157,15 +157,16 @@ pub fn run<const FMA: bool, T: Terms, S: Sink>(
 /// `y[lo]` of the run `[lo, hi)` with `y[hi] = carry`, storing nothing.
 ///
 /// Only one value is needed, so no in-register scan: with the run's full
-/// 4-step groups `g_0 > g_1 > ... > g_{M-1}` taken from the right (two per
-/// 8-step block), lane `j` keeps `acc_j = sum_m c^(4 (M-1-m)) x[g_m + j]` by
-/// Horner (`acc = c^4 acc + x[g_m..g_m + 4]`: one vector multiply-add per 4
-/// steps), and then
+/// 16-step groups `g_0 > g_1 > ... > g_{M-1}` taken from the right, lane `i`
+/// (`0..16`) keeps `acc_i = sum_m c^(16 (M-1-m)) x[g_m + i]` by Horner
+/// (`acc = c^16 acc + x[g_m..g_m + 16]`: sixteen independent chains, so one
+/// multiply-add latency per 16 steps instead of per 4), and then
 ///
 /// ```text
-/// y[g_{M-1}] = sum_j c^j acc_j + c^(4M) carry
+/// y[g_{M-1}] = sum_i c^i acc_i + c^(16M) carry
 /// ```
 ///
+/// (the sum taken as `sum_j c^j (acc_j + c^4 (acc_{j+4} + c^4 (acc_{j+8} + c^4 acc_{j+12})))`).
 /// The steps left over at the run's left end are taken one at a time.
 #[inline(always)]
 pub fn run_first<const FMA: bool, T: Terms>(
@@ -178,37 +179,48 @@ pub fn run_first<const FMA: bool, T: Terms>(
     if k.c == 0.0 {
         return if hi > lo { terms.x1(lo) } else { carry };
     }
-    // One 4-lane accumulator (the width of a vector register), fed the upper
-    // and then the lower half of each 8 steps with `c^4`: lane j keeps
-    // `acc_j = sum_m c^(4 (M-1-m)) x[4m + j]` over the run's 4-step groups.
-    // (An 8-lane array here is split by the compiler into 2-lane pairs with
-    // shuffles around every conversion.)
-    let c4 = k.pw.0[4];
-    let mut acc = [0.0f64; 4];
+    // Four 4-lane accumulators (the width of a vector register), one per
+    // 4-step quarter of each 16 steps, each advanced with `c^16`: lane j of
+    // accumulator q keeps `sum_m c^(16 (M-1-m)) x[16m + 4q + j]` over the
+    // run's 16-step groups. Independent accumulators keep the multiply-adds
+    // off one dependency chain (one chain would cost a multiply-add latency
+    // per 4 steps, more than the memory read of those steps). (An 8-lane
+    // array here is split by the compiler into 2-lane pairs with shuffles
+    // around every conversion.)
+    let c16 = k.pw.0[0] * k.pw.0[0];
+    let mut acc = [[0.0f64; 4]; 4];
     let mut t = hi;
-    while t >= lo + W {
-        t -= W;
-        let x = terms.x8(t).0;
+    while t >= lo + 2 * W {
+        t -= 2 * W;
+        let hi8 = terms.x8(t + W).0;
+        let lo8 = terms.x8(t).0;
         for j in 0..4 {
-            acc[j] = madd::<FMA>(c4, acc[j], x[j + 4]);
-        }
-        for j in 0..4 {
-            acc[j] = madd::<FMA>(c4, acc[j], x[j]);
+            acc[3][j] = madd::<FMA>(c16, acc[3][j], hi8[j + 4]);
+            acc[2][j] = madd::<FMA>(c16, acc[2][j], hi8[j]);
+            acc[1][j] = madd::<FMA>(c16, acc[1][j], lo8[j + 4]);
+            acc[0][j] = madd::<FMA>(c16, acc[0][j], lo8[j]);
         }
     }
     let mut y = carry;
-    let blocks = (hi - t) / W;
-    if blocks > 0 {
+    let groups = (hi - t) / (2 * W);
+    if groups > 0 {
+        // `sum_q c^(4q) sum_j c^j acc[q][j]`.
+        let c4 = k.pw.0[4];
         let mut h = [0.0f64; 4];
         for (j, v) in h.iter_mut().enumerate() {
-            *v = k.p0.0[j] * acc[j];
+            let q = madd::<FMA>(
+                c4,
+                madd::<FMA>(c4, madd::<FMA>(c4, acc[3][j], acc[2][j]), acc[1][j]),
+                acc[0][j],
+            );
+            *v = k.p0.0[j] * q;
         }
         let sum = (h[0] + h[2]) + (h[1] + h[3]);
-        // `c^(8K) carry`, left out when the carry is 0 (the maps' case).
+        // `c^(16 G) carry`, left out when the carry is 0 (the maps' case).
         y = if carry == 0.0 {
             sum
         } else {
-            madd::<FMA>(k.c.powi((W * blocks) as i32), carry, sum)
+            madd::<FMA>(k.c.powi((2 * W * groups) as i32), carry, sum)
         };
     }
     while t > lo {
