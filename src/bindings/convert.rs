@@ -4,6 +4,7 @@
 
 use super::errors::{fmt_index, unravel, InputError, ShapeError};
 use crate::core::error::fmt_shape;
+use num_traits::{One, Zero};
 use numpy::prelude::*;
 use numpy::{dtype, Element, PyArrayDescr, PyArrayDyn, PyUntypedArray};
 use pyo3::exceptions::PyTypeError;
@@ -162,13 +163,14 @@ pub fn as_flags<'py>(
     let bad = np.getattr("logical_and")?.call1((&set, not_one))?;
     if bad.call_method0("any")?.is_truthy()? {
         let flat: usize = np.getattr("argmax")?.call1((&bad,))?.extract()?;
-        return Err(not_a_flag(name, &a, a.shape(), flat));
+        return Err(not_a_flag(name, &a, flat));
     }
     Ok(set.cast_into::<PyArrayDyn<bool>>()?)
 }
 
 /// The error for the element at C-order position `flat` of a flag array.
-fn not_a_flag(name: &str, a: &Bound<'_, PyUntypedArray>, shape: &[usize], flat: usize) -> PyErr {
+fn not_a_flag(name: &str, a: &Bound<'_, PyUntypedArray>, flat: usize) -> PyErr {
+    let shape = a.shape();
     let value = a
         .call_method1("item", (flat,))
         .and_then(|v| v.str().map(|s| s.to_string()))
@@ -183,32 +185,9 @@ fn not_a_flag(name: &str, a: &Bound<'_, PyUntypedArray>, shape: &[usize], flat: 
     ))
 }
 
-/// A number that may stand for a flag: 0 (False) or 1 (True).
-trait FlagValue: Element + Copy {
-    fn is_zero(self) -> bool;
-    fn is_one(self) -> bool;
-}
-
-macro_rules! flag_value {
-    ($zero:expr, $one:expr; $($t:ty),*) => {$(
-        impl FlagValue for $t {
-            #[inline(always)]
-            fn is_zero(self) -> bool {
-                self == $zero
-            }
-            #[inline(always)]
-            fn is_one(self) -> bool {
-                self == $one
-            }
-        }
-    )*};
-}
-flag_value!(0.0, 1.0; f32, f64);
-flag_value!(0, 1; u8, i8, i16, u16, i32, u32, i64, u64);
-
 /// For a C-contiguous `x`: `x != 0` as a new bool array, after checking in
 /// the same pass that every element is 0 or 1. `None` for other layouts.
-fn flags_from_slice<'py, T: FlagValue>(
+fn flags_from_slice<'py, T: Element + Copy + PartialEq + Zero + One>(
     py: Python<'py>,
     name: &str,
     x: &Bound<'py, PyArrayDyn<T>>,
@@ -222,20 +201,18 @@ fn flags_from_slice<'py, T: FlagValue>(
     };
     // Branch-free, so the loop vectorises; the bad element is looked for only
     // once there is one.
+    let (zero, one) = (T::zero(), T::one());
     let mut bad = false;
     let flags: Vec<bool> = s
         .iter()
         .map(|&e| {
-            bad |= !(e.is_zero() | e.is_one());
-            !e.is_zero()
+            bad |= !((e == zero) | (e == one));
+            e != zero
         })
         .collect();
     if bad {
-        let flat = s
-            .iter()
-            .position(|e| !(e.is_zero() || e.is_one()))
-            .unwrap_or(0);
-        return Err(not_a_flag(name, x.as_untyped(), x.shape(), flat));
+        let flat = s.iter().position(|&e| e != zero && e != one).unwrap_or(0);
+        return Err(not_a_flag(name, x.as_untyped(), flat));
     }
     let arr = ndarray::ArrayD::from_shape_vec(x.shape(), flags)
         .map_err(|_| super::errors::internal_error("flag array shape"))?;
