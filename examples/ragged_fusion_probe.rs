@@ -13,12 +13,13 @@
 //!   overlap;
 //! * `scan-cold-out`: only the scans' stores (inputs from one cached block);
 //! * `fused`: the scan of block `b` and the map of block `b - 1` in one
-//!   loop, so loads and stores overlap, as a chain with claim-ahead would.
+//!   loop (`scan::run_with_first`), so loads and stores overlap: a worker
+//!   that maps its next block while it scans the current one.
 //!
 //! It prints milliseconds per sweep and each as a multiple of `onepass`.
 
-use rollscan::core::scan::{run, run_first, Run8, Sink, Terms, W};
-use rollscan::core::simd::{dispatch, madd, F64x8, Kernel};
+use rollscan::core::scan::{run, run_first, run_with_first, Run8, Sink, Terms, W};
+use rollscan::core::simd::{dispatch, F64x8, Kernel};
 use std::time::Instant;
 
 /// Steps per block, as in `core::ragged::BLOCK`.
@@ -76,55 +77,6 @@ struct Sweep<'a> {
     y: &'a mut [f32],
 }
 
-/// Scan `xs` into `ys` from `carry` while mapping `xm` (same length, a
-/// multiple of 16) with the accumulators of `run_first`; returns the scan's
-/// first output and the map.
-// Lane j of every accumulator row is combined: indexing reads plainest here.
-#[allow(clippy::needless_range_loop)]
-#[inline(always)]
-fn scan_and_map<const FMA: bool>(
-    k: &Run8,
-    xs: &[f32],
-    ys: &mut [f32],
-    xm: &[f32],
-    carry: f64,
-) -> (f64, f64) {
-    let (c, c4, c16) = (k.c(), k.c().powi(4), k.c().powi(16));
-    let mut acc = [[0.0f64; 4]; 4];
-    let mut y = carry;
-    let groups = xs
-        .chunks_exact(16)
-        .rev()
-        .zip(ys.chunks_exact_mut(16).rev())
-        .zip(xm.chunks_exact(16).rev());
-    for ((sx, sy), mx) in groups {
-        let hi = k.block::<FMA>(&cvt8(&sx[8..16]), y);
-        let lo = k.block::<FMA>(&cvt8(&sx[0..8]), hi.0[0]);
-        y = lo.0[0];
-        for (d, v) in sy.iter_mut().zip(lo.0.iter().chain(hi.0.iter())) {
-            *d = *v as f32;
-        }
-        let mut m = [0.0f64; 16];
-        for (d, &v) in m.iter_mut().zip(mx) {
-            *d = v as f64;
-        }
-        for j in 0..4 {
-            for (q, a) in acc.iter_mut().enumerate() {
-                a[j] = madd::<FMA>(c16, a[j], m[4 * q + j]);
-            }
-        }
-    }
-    let mut h = 0.0;
-    let mut cj = 1.0;
-    for j in 0..4 {
-        let q = madd::<FMA>(c4, acc[3][j], acc[2][j]);
-        let q = madd::<FMA>(c4, madd::<FMA>(c4, q, acc[1][j]), acc[0][j]);
-        h += cj * q;
-        cj *= c;
-    }
-    (y, h)
-}
-
 impl Kernel for Sweep<'_> {
     type Output = f64;
     #[inline(always)]
@@ -153,12 +105,16 @@ impl Kernel for Sweep<'_> {
                 maps = run_first::<FMA, _>(k, &Xs(x), (nb - 1) * B, nb * B, 0.0);
                 for b in (1..nb).rev() {
                     let lo = b * B;
-                    let (c, m) = scan_and_map::<FMA>(
+                    let (c, m) = run_with_first::<FMA, _, _, _>(
                         k,
-                        &x[lo..lo + B],
-                        &mut y[lo..lo + B],
-                        &x[lo - B..lo],
+                        &Xs(x),
+                        &mut Ys(y),
+                        lo,
+                        lo + B,
                         carry,
+                        &Xs(x),
+                        lo - B,
+                        lo,
                     );
                     carry = c;
                     maps += m;
@@ -181,6 +137,12 @@ fn main() {
         ("scan-cold-out", Case::ScanColdOut),
         ("fused", Case::Fused),
     ];
+    // One case alone, by name (for a profiler), or all of them.
+    let only = std::env::args().nth(1);
+    let cases: Vec<_> = cases
+        .into_iter()
+        .filter(|(name, _)| only.as_deref().is_none_or(|o| o == *name))
+        .collect();
     for round in 0..3 {
         let mut ms = Vec::new();
         for &(_, case) in &cases {

@@ -179,21 +179,73 @@ pub fn run_first<const FMA: bool, T: Terms>(
     if k.c == 0.0 {
         return if hi > lo { terms.x1(lo) } else { carry };
     }
-    // Four 4-lane accumulators (the width of a vector register), one per
-    // 4-step quarter of each 16 steps, each advanced with `c^16`: lane j of
-    // accumulator q keeps `sum_m c^(16 (M-1-m)) x[16m + 4q + j]` over the
-    // run's 16-step groups. Independent accumulators keep the multiply-adds
-    // off one dependency chain (one chain would cost a multiply-add latency
-    // per 4 steps, more than the memory read of those steps). (An 8-lane
-    // array here is split by the compiler into 2-lane pairs with shuffles
-    // around every conversion.)
-    let c16 = k.pw.0[0] * k.pw.0[0];
-    let mut acc = [[0.0f64; 4]; 4];
-    let mut t = hi;
-    while t >= lo + 2 * W {
-        t -= 2 * W;
-        let hi8 = terms.x8(t + W).0;
-        let lo8 = terms.x8(t).0;
+    let mut acc = Heads::new(k, lo, hi);
+    while acc.more() {
+        acc.group::<FMA, T>(terms);
+    }
+    acc.finish::<FMA, T>(terms, carry)
+}
+
+/// The state of [`run_first`] part-way through a run: its 16-step groups
+/// are taken one at a time ([`Heads::group`]), so another loop can advance
+/// it between its own steps ([`run_with_first`]) with the very same
+/// operations, in the same order, as `run_first` alone.
+///
+/// Four 4-lane accumulators (the width of a vector register), one per 4-step
+/// quarter of each 16 steps, each advanced with `c^16`: lane j of
+/// accumulator q keeps `sum_m c^(16 (M-1-m)) x[16m + 4q + j]` over the run's
+/// 16-step groups. Independent accumulators keep the multiply-adds off one
+/// dependency chain (one chain would cost a multiply-add latency per 4 steps,
+/// more than the memory read of those steps). (An 8-lane array here is split
+/// by the compiler into 2-lane pairs with shuffles around every conversion.)
+struct Heads<'k> {
+    k: &'k Run8,
+    c16: f64,
+    acc: [[f64; 4]; 4],
+    lo: usize,
+    hi: usize,
+    /// The left end of the groups taken so far.
+    t: usize,
+}
+
+impl<'k> Heads<'k> {
+    #[inline(always)]
+    fn new(k: &'k Run8, lo: usize, hi: usize) -> Self {
+        Heads {
+            k,
+            c16: k.pw.0[0] * k.pw.0[0],
+            acc: [[0.0; 4]; 4],
+            lo,
+            hi,
+            t: hi,
+        }
+    }
+
+    /// Whether a full 16-step group is left.
+    #[inline(always)]
+    fn more(&self) -> bool {
+        self.t >= self.lo + 2 * W
+    }
+
+    /// Take the next group (the caller checks [`Heads::more`]).
+    #[inline(always)]
+    fn group<const FMA: bool, T: Terms>(&mut self, terms: &T) {
+        let (hi8, lo8) = self.load(terms);
+        self.add::<FMA>(&hi8, &lo8);
+    }
+
+    /// The next group's inputs, upper 8 steps first.
+    #[inline(always)]
+    fn load<T: Terms>(&mut self, terms: &T) -> (F64x8, F64x8) {
+        self.t -= 2 * W;
+        (terms.x8(self.t + W), terms.x8(self.t))
+    }
+
+    /// Advance the accumulators by one group's inputs.
+    #[inline(always)]
+    fn add<const FMA: bool>(&mut self, hi8: &F64x8, lo8: &F64x8) {
+        let (hi8, lo8) = (&hi8.0, &lo8.0);
+        let (c16, acc) = (self.c16, &mut self.acc);
         for j in 0..4 {
             acc[3][j] = madd::<FMA>(c16, acc[3][j], hi8[j + 4]);
             acc[2][j] = madd::<FMA>(c16, acc[2][j], hi8[j]);
@@ -201,33 +253,96 @@ pub fn run_first<const FMA: bool, T: Terms>(
             acc[0][j] = madd::<FMA>(c16, acc[0][j], lo8[j]);
         }
     }
-    let mut y = carry;
-    let groups = (hi - t) / (2 * W);
-    if groups > 0 {
-        // `sum_q c^(4q) sum_j c^j acc[q][j]`.
-        let c4 = k.pw.0[4];
-        let mut h = [0.0f64; 4];
-        for (j, v) in h.iter_mut().enumerate() {
-            let q = madd::<FMA>(
-                c4,
-                madd::<FMA>(c4, madd::<FMA>(c4, acc[3][j], acc[2][j]), acc[1][j]),
-                acc[0][j],
-            );
-            *v = k.p0.0[j] * q;
+
+    /// `y[lo]` once every group is taken, with `carry` at `hi`.
+    #[inline(always)]
+    fn finish<const FMA: bool, T: Terms>(self, terms: &T, carry: f64) -> f64 {
+        let Heads {
+            k, acc, lo, hi, t, ..
+        } = self;
+        let mut y = carry;
+        let groups = (hi - t) / (2 * W);
+        if groups > 0 {
+            // `sum_q c^(4q) sum_j c^j acc[q][j]`.
+            let c4 = k.pw.0[4];
+            let mut h = [0.0f64; 4];
+            for (j, v) in h.iter_mut().enumerate() {
+                let q = madd::<FMA>(
+                    c4,
+                    madd::<FMA>(c4, madd::<FMA>(c4, acc[3][j], acc[2][j]), acc[1][j]),
+                    acc[0][j],
+                );
+                *v = k.p0.0[j] * q;
+            }
+            let sum = (h[0] + h[2]) + (h[1] + h[3]);
+            // `c^(16 G) carry`, left out when the carry is 0 (the maps' case).
+            y = if carry == 0.0 {
+                sum
+            } else {
+                madd::<FMA>(k.c.powi((2 * W * groups) as i32), carry, sum)
+            };
         }
-        let sum = (h[0] + h[2]) + (h[1] + h[3]);
-        // `c^(16 G) carry`, left out when the carry is 0 (the maps' case).
-        y = if carry == 0.0 {
-            sum
-        } else {
-            madd::<FMA>(k.c.powi((2 * W * groups) as i32), carry, sum)
-        };
+        let mut t = t;
+        while t > lo {
+            t -= 1;
+            y = madd::<FMA>(k.c, y, terms.x1(t));
+        }
+        y
     }
-    while t > lo {
-        t -= 1;
-        y = madd::<FMA>(k.c, y, terms.x1(t));
+}
+
+/// [`run`] over `[lo, hi)` and [`run_first`] over `[mlo, mhi)` (with zero
+/// carry) in one loop: returns `(y[lo], first)`, both bit-identical to the
+/// two calls made one after the other.
+///
+/// Why one loop: a scan mostly stores and a map only loads, so, run apart,
+/// each waits on memory in its own direction; interleaved 16 steps at a
+/// time, the loads of one overlap the stores of the other. This is how a
+/// worker maps its next block while it scans the current one. The scan
+/// takes the same 8-step blocks from the right as [`run`], and the map the
+/// same 16-step groups, in the same order, as [`run_first`]; whichever has
+/// steps left after the shared part finishes alone.
+#[inline(always)]
+#[allow(clippy::too_many_arguments)]
+pub fn run_with_first<const FMA: bool, T: Terms, S: Sink, U: Terms>(
+    k: &Run8,
+    terms: &T,
+    out: &mut S,
+    lo: usize,
+    hi: usize,
+    carry: f64,
+    mterms: &U,
+    mlo: usize,
+    mhi: usize,
+) -> (f64, f64) {
+    if k.c == 0.0 {
+        let y = run::<FMA, T, S>(k, terms, out, lo, hi, carry);
+        return (y, run_first::<FMA, U>(k, mterms, mlo, mhi, 0.0));
     }
-    y
+    let mut heads = Heads::new(k, mlo, mhi);
+    let mut y = carry;
+    let mut marks = F64x8::splat(0.0);
+    let mut t = hi;
+    while t >= lo + 2 * W && heads.more() {
+        // Every load first, so the arithmetic is one straight run of code
+        // (bounds checks in between keep the compiler from vectorising it).
+        t -= 2 * W;
+        let (xu, xl) = (terms.x8(t + W), terms.x8(t));
+        let (mu, ml) = heads.load(mterms);
+        let upper = k.block::<FMA>(&xu, y);
+        let lower = k.block::<FMA>(&xl, upper.0[0]);
+        heads.add::<FMA>(&mu, &ml);
+        out.put8(t + W, &upper);
+        out.put8(t, &lower);
+        marks = marks + upper.finite_marks() + lower.finite_marks();
+        y = lower.0[0];
+    }
+    out.marks(marks);
+    while heads.more() {
+        heads.group::<FMA, U>(mterms);
+    }
+    let first = heads.finish::<FMA, U>(mterms, 0.0);
+    (run::<FMA, T, S>(k, terms, out, lo, t, y), first)
 }
 
 /// The affine map a segment applies to the carry entering it from the right:
@@ -322,6 +437,65 @@ mod tests {
                 for lo in [0, n / 3] {
                     both::<false>(&x, c, lo, 2.5);
                     both::<true>(&x, c, lo, -1.0);
+                }
+            }
+        }
+    }
+
+    /// The fused loop must give, bit for bit, what `run` and `run_first`
+    /// give apart: another worker may compute the same map alone, and the
+    /// results must not depend on who did.
+    fn fused_is_bit_identical<const FMA: bool>(
+        x: &[f64],
+        c: f64,
+        scan: (usize, usize),
+        map: (usize, usize),
+    ) {
+        let k = Run8::new(c);
+        let mut apart = Ys(vec![f64::NAN; x.len()]);
+        let y = run::<FMA, _, _>(&k, &Xs(x), &mut apart, scan.0, scan.1, 0.75);
+        let m = run_first::<FMA, _>(&k, &Xs(x), map.0, map.1, 0.0);
+        let mut fused = Ys(vec![f64::NAN; x.len()]);
+        let (fy, fm) = run_with_first::<FMA, _, _, _>(
+            &k,
+            &Xs(x),
+            &mut fused,
+            scan.0,
+            scan.1,
+            0.75,
+            &Xs(x),
+            map.0,
+            map.1,
+        );
+        let ctx = format!("c={c} scan={scan:?} map={map:?} fma={FMA}");
+        assert_eq!(fy.to_bits(), y.to_bits(), "{ctx}");
+        assert_eq!(fm.to_bits(), m.to_bits(), "{ctx}");
+        for (t, (a, b)) in apart.0.iter().zip(&fused.0).enumerate() {
+            assert_eq!(a.to_bits(), b.to_bits(), "{ctx} t={t}");
+        }
+    }
+
+    #[test]
+    fn the_fused_scan_and_map_equal_the_two_apart() {
+        let x: Vec<f64> = (0..700)
+            .map(|i| ((i * 7919) % 113) as f64 * 0.013 - 0.7)
+            .collect();
+        // Scan and map of every relative size, aligned to 16 or not, empty.
+        let spans = [
+            (0, 0),
+            (3, 3),
+            (0, 5),
+            (0, 16),
+            (1, 33),
+            (10, 266),
+            (17, 700),
+            (300, 700),
+        ];
+        for c in [0.0, 0.5, 0.99, 1.0] {
+            for &scan in &spans {
+                for &map in &spans {
+                    fused_is_bit_identical::<false>(&x, c, scan, map);
+                    fused_is_bit_identical::<true>(&x, c, scan, map);
                 }
             }
         }
