@@ -8,59 +8,32 @@
 //!
 //! * `onepass`: one scan over everything (what many short episodes cost:
 //!   their maps are short);
-//! * `blocked`: per block, the map and then the scan (what the kernel does
-//!   for one episode today): the map's loads and the scan's stores do not
-//!   overlap;
+//! * `blocked`: per block, the map and then the scan (what the kernel did
+//!   for one episode before the fused path, and still does for GAE): the
+//!   map's loads and the scan's stores do not overlap;
 //! * `scan-cold-out`: only the scans' stores (inputs from one cached block);
 //! * `fused`: the scan of block `b` and the map of block `b - 1` in one
-//!   loop (`scan::run_with_first`), so loads and stores overlap: a worker
-//!   that maps its next block while it scans the current one.
+//!   loop (`scan::run_with_first`), so loads and stores overlap: what a
+//!   worker of the kernel does for discounted returns inside a long piece,
+//!   mapping the block it claimed next while it scans the current one.
 //!
-//! It prints milliseconds per sweep and each as a multiple of `onepass`.
+//! It prints milliseconds per sweep and each as a multiple of `onepass`;
+//! with a case's name as argument it runs that case alone (for a profiler).
 
-use rollscan::core::scan::{run, run_first, run_with_first, Run8, Sink, Terms, W};
+use rollscan::core::scan::{run, run_first, run_with_first, Run8, SliceSink, SliceTerms};
 use rollscan::core::simd::{dispatch, F64x8, Kernel};
 use std::time::Instant;
 
+/// Outputs into `y`.
+fn sink(y: &mut [f32]) -> SliceSink<'_, f32> {
+    SliceSink {
+        ys: y,
+        marks: F64x8::splat(0.0),
+    }
+}
+
 /// Steps per block, as in `core::ragged::BLOCK`.
 const B: usize = rollscan::core::ragged::BLOCK;
-
-struct Xs<'a>(&'a [f32]);
-impl Terms for Xs<'_> {
-    #[inline(always)]
-    fn x8(&self, t: usize) -> F64x8 {
-        cvt8(&self.0[t..t + W])
-    }
-    #[inline(always)]
-    fn x1(&self, t: usize) -> f64 {
-        self.0[t] as f64
-    }
-}
-
-struct Ys<'a>(&'a mut [f32]);
-impl Sink for Ys<'_> {
-    #[inline(always)]
-    fn put8(&mut self, t: usize, y: &F64x8) {
-        for (d, v) in self.0[t..t + W].iter_mut().zip(y.0) {
-            *d = v as f32;
-        }
-    }
-    #[inline(always)]
-    fn put1(&mut self, t: usize, y: f64) {
-        self.0[t] = y as f32;
-    }
-    #[inline(always)]
-    fn marks(&mut self, _: F64x8) {}
-}
-
-#[inline(always)]
-fn cvt8(s: &[f32]) -> F64x8 {
-    let mut o = F64x8::splat(0.0);
-    for (d, &v) in o.0.iter_mut().zip(s) {
-        *d = v as f64;
-    }
-    o
-}
 
 #[derive(Clone, Copy)]
 enum Case {
@@ -86,40 +59,38 @@ impl Kernel for Sweep<'_> {
         let mut carry = 0.0;
         let mut maps = 0.0;
         match case {
-            Case::OnePass => carry = run::<FMA, _, _>(k, &Xs(x), &mut Ys(y), 0, nb * B, 0.0),
+            Case::OnePass => {
+                carry = run::<FMA, _, _>(k, &SliceTerms(x), &mut sink(y), 0, nb * B, 0.0)
+            }
             Case::Blocked | Case::ScanColdOut => {
                 for b in (0..nb).rev() {
                     let lo = b * B;
                     let out = &mut y[lo..lo + B];
                     let xb = match case {
                         Case::Blocked => {
-                            maps += run_first::<FMA, _>(k, &Xs(x), lo, lo + B, 0.0);
+                            maps += run_first::<FMA, _>(k, &SliceTerms(x), lo, lo + B, 0.0);
                             &x[lo..lo + B]
                         }
                         _ => &x[..B],
                     };
-                    carry = run::<FMA, _, _>(k, &Xs(xb), &mut Ys(out), 0, B, carry);
+                    carry = run::<FMA, _, _>(k, &SliceTerms(xb), &mut sink(out), 0, B, carry);
                 }
             }
             Case::Fused => {
-                maps = run_first::<FMA, _>(k, &Xs(x), (nb - 1) * B, nb * B, 0.0);
+                maps = run_first::<FMA, _>(k, &SliceTerms(x), (nb - 1) * B, nb * B, 0.0);
                 for b in (1..nb).rev() {
                     let lo = b * B;
-                    let (c, m) = run_with_first::<FMA, _, _, _>(
+                    let (c, m) = run_with_first::<FMA, f32>(
                         k,
-                        &Xs(x),
-                        &mut Ys(y),
-                        lo,
-                        lo + B,
+                        &x[lo..lo + B],
+                        &mut sink(&mut y[lo..lo + B]),
                         carry,
-                        &Xs(x),
-                        lo - B,
-                        lo,
+                        &x[lo - B..lo],
                     );
                     carry = c;
                     maps += m;
                 }
-                carry = run::<FMA, _, _>(k, &Xs(x), &mut Ys(y), 0, B, carry);
+                carry = run::<FMA, _, _>(k, &SliceTerms(x), &mut sink(y), 0, B, carry);
             }
         }
         carry + maps

@@ -21,6 +21,7 @@
 //! 8 steps. The result is the recurrence's value up to rounding (a few ulps
 //! of f64), and it depends only on the run, never on the thread count.
 
+use super::float::Real;
 use super::simd::{finite_mark, madd, F64x8};
 
 /// Steps per block of a run.
@@ -230,15 +231,9 @@ impl<'k> Heads<'k> {
     /// Take the next group (the caller checks [`Heads::more`]).
     #[inline(always)]
     fn group<const FMA: bool, T: Terms>(&mut self, terms: &T) {
-        let (hi8, lo8) = self.load(terms);
-        self.add::<FMA>(&hi8, &lo8);
-    }
-
-    /// The next group's inputs, upper 8 steps first.
-    #[inline(always)]
-    fn load<T: Terms>(&mut self, terms: &T) -> (F64x8, F64x8) {
         self.t -= 2 * W;
-        (terms.x8(self.t + W), terms.x8(self.t))
+        let (hi8, lo8) = (terms.x8(self.t + W), terms.x8(self.t));
+        self.add::<FMA>(&hi8, &lo8);
     }
 
     /// Advance the accumulators by one group's inputs.
@@ -291,9 +286,64 @@ impl<'k> Heads<'k> {
     }
 }
 
-/// [`run`] over `[lo, hi)` and [`run_first`] over `[mlo, mhi)` (with zero
-/// carry) in one loop: returns `(y[lo], first)`, both bit-identical to the
-/// two calls made one after the other.
+/// A slice of storage floats as a run's inputs: `x[t] = xs[t]`.
+pub struct SliceTerms<'a, F>(pub &'a [F]);
+
+impl<F: Real> Terms for SliceTerms<'_, F> {
+    #[inline(always)]
+    fn x8(&self, t: usize) -> F64x8 {
+        widen8(&self.0[t..t + W])
+    }
+    #[inline(always)]
+    fn x1(&self, t: usize) -> f64 {
+        self.0[t].to_f64()
+    }
+}
+
+/// A slice of storage floats as a run's outputs (`ys[t] = y[t]` rounded
+/// once), with the finite marks handed over summed in `marks`.
+pub struct SliceSink<'a, F> {
+    /// Where `y[t]` goes.
+    pub ys: &'a mut [F],
+    /// The outputs' finite marks, summed (0 while every one is finite).
+    pub marks: F64x8,
+}
+
+impl<F: Real> Sink for SliceSink<'_, F> {
+    #[inline(always)]
+    fn put8(&mut self, t: usize, y: &F64x8) {
+        narrow8(&mut self.ys[t..t + W], y);
+    }
+    #[inline(always)]
+    fn put1(&mut self, t: usize, y: f64) {
+        self.ys[t] = F::from_f64(y);
+    }
+    #[inline(always)]
+    fn marks(&mut self, m: F64x8) {
+        self.marks = self.marks + m;
+    }
+}
+
+#[inline(always)]
+fn widen8<F: Real>(s: &[F]) -> F64x8 {
+    let mut o = F64x8::splat(0.0);
+    for (d, &v) in o.0.iter_mut().zip(s) {
+        *d = v.to_f64();
+    }
+    o
+}
+
+#[inline(always)]
+fn narrow8<F: Real>(d: &mut [F], y: &F64x8) {
+    for (d, &v) in d.iter_mut().zip(&y.0) {
+        *d = F::from_f64(v);
+    }
+}
+
+/// [`run`] over all of `xs` (into `out.ys`, `carry` entering at the end) and
+/// [`run_first`] over all of `xm` (zero carry) in one loop; returns
+/// `(y[0], first)`, both bit-identical to the two calls made apart. `xs` and
+/// `out.ys` have one length (extra outputs are left alone).
 ///
 /// Why one loop: a scan mostly stores and a map only loads, so, run apart,
 /// each waits on memory in its own direction; interleaved 16 steps at a
@@ -301,48 +351,53 @@ impl<'k> Heads<'k> {
 /// worker maps its next block while it scans the current one. The scan
 /// takes the same 8-step blocks from the right as [`run`], and the map the
 /// same 16-step groups, in the same order, as [`run_first`]; whichever has
-/// steps left after the shared part finishes alone.
+/// steps left after the shared part finishes alone. The shared loop walks
+/// fixed 16-step chunks of the slices, with no index checks inside: generic
+/// accessors that check every index kept the compiler from vectorising it.
 #[inline(always)]
-#[allow(clippy::too_many_arguments)]
-pub fn run_with_first<const FMA: bool, T: Terms, S: Sink, U: Terms>(
+pub fn run_with_first<const FMA: bool, F: Real>(
     k: &Run8,
-    terms: &T,
-    out: &mut S,
-    lo: usize,
-    hi: usize,
+    xs: &[F],
+    out: &mut SliceSink<'_, F>,
     carry: f64,
-    mterms: &U,
-    mlo: usize,
-    mhi: usize,
+    xm: &[F],
 ) -> (f64, f64) {
+    let n = xs.len().min(out.ys.len());
+    let m = xm.len();
     if k.c == 0.0 {
-        let y = run::<FMA, T, S>(k, terms, out, lo, hi, carry);
-        return (y, run_first::<FMA, U>(k, mterms, mlo, mhi, 0.0));
+        let y = run::<FMA, _, _>(k, &SliceTerms(xs), out, 0, n, carry);
+        return (y, run_first::<FMA, _>(k, &SliceTerms(xm), 0, m, 0.0));
     }
-    let mut heads = Heads::new(k, mlo, mhi);
+    let shared = (n / (2 * W)).min(m / (2 * W)) * 2 * W;
+    let mut heads = Heads::new(k, 0, m);
     let mut y = carry;
     let mut marks = F64x8::splat(0.0);
-    let mut t = hi;
-    while t >= lo + 2 * W && heads.more() {
-        // Every load first, so the arithmetic is one straight run of code
-        // (bounds checks in between keep the compiler from vectorising it).
-        t -= 2 * W;
-        let (xu, xl) = (terms.x8(t + W), terms.x8(t));
-        let (mu, ml) = heads.load(mterms);
+    let chunks = xs[n - shared..n]
+        .rchunks_exact(2 * W)
+        .zip(out.ys[n - shared..n].rchunks_exact_mut(2 * W))
+        .zip(xm[m - shared..].rchunks_exact(2 * W));
+    for ((sx, sy), sm) in chunks {
+        let (xu, xl) = (widen8(&sx[W..]), widen8(&sx[..W]));
+        let (mu, ml) = (widen8(&sm[W..]), widen8(&sm[..W]));
         let upper = k.block::<FMA>(&xu, y);
         let lower = k.block::<FMA>(&xl, upper.0[0]);
         heads.add::<FMA>(&mu, &ml);
-        out.put8(t + W, &upper);
-        out.put8(t, &lower);
+        narrow8(&mut sy[W..], &upper);
+        narrow8(&mut sy[..W], &lower);
         marks = marks + upper.finite_marks() + lower.finite_marks();
         y = lower.0[0];
     }
+    heads.t -= shared;
     out.marks(marks);
+    let map = SliceTerms(xm);
     while heads.more() {
-        heads.group::<FMA, U>(mterms);
+        heads.group::<FMA, _>(&map);
     }
-    let first = heads.finish::<FMA, U>(mterms, 0.0);
-    (run::<FMA, T, S>(k, terms, out, lo, t, y), first)
+    let first = heads.finish::<FMA, _>(&map, 0.0);
+    (
+        run::<FMA, _, _>(k, &SliceTerms(xs), out, 0, n - shared, y),
+        first,
+    )
 }
 
 /// The affine map a segment applies to the carry entering it from the right:
@@ -445,33 +500,36 @@ mod tests {
     /// The fused loop must give, bit for bit, what `run` and `run_first`
     /// give apart: another worker may compute the same map alone, and the
     /// results must not depend on who did.
-    fn fused_is_bit_identical<const FMA: bool>(
-        x: &[f64],
+    fn fused_is_bit_identical<const FMA: bool, F: Real>(
+        x: &[F],
         c: f64,
         scan: (usize, usize),
         map: (usize, usize),
     ) {
         let k = Run8::new(c);
-        let mut apart = Ys(vec![f64::NAN; x.len()]);
-        let y = run::<FMA, _, _>(&k, &Xs(x), &mut apart, scan.0, scan.1, 0.75);
-        let m = run_first::<FMA, _>(&k, &Xs(x), map.0, map.1, 0.0);
-        let mut fused = Ys(vec![f64::NAN; x.len()]);
-        let (fy, fm) = run_with_first::<FMA, _, _, _>(
-            &k,
-            &Xs(x),
-            &mut fused,
-            scan.0,
-            scan.1,
-            0.75,
-            &Xs(x),
-            map.0,
-            map.1,
-        );
-        let ctx = format!("c={c} scan={scan:?} map={map:?} fma={FMA}");
+        let nan = F::from_f64(f64::NAN);
+        let (xs, xm) = (&x[scan.0..scan.1], &x[map.0..map.1]);
+        let mut apart = SliceSink {
+            ys: &mut vec![nan; xs.len() + 3],
+            marks: F64x8::splat(0.0),
+        };
+        let y = run::<FMA, _, _>(&k, &SliceTerms(xs), &mut apart, 0, xs.len(), 0.75);
+        let m = run_first::<FMA, _>(&k, &SliceTerms(xm), 0, xm.len(), 0.0);
+        let mut ys = vec![nan; xs.len() + 3];
+        let mut fused = SliceSink {
+            ys: &mut ys[..xs.len()],
+            marks: F64x8::splat(0.0),
+        };
+        let (fy, fm) = run_with_first::<FMA, F>(&k, xs, &mut fused, 0.75, xm);
+        let ctx = format!("c={c} scan={scan:?} map={map:?} fma={FMA} {}", F::NAME);
         assert_eq!(fy.to_bits(), y.to_bits(), "{ctx}");
         assert_eq!(fm.to_bits(), m.to_bits(), "{ctx}");
-        for (t, (a, b)) in apart.0.iter().zip(&fused.0).enumerate() {
-            assert_eq!(a.to_bits(), b.to_bits(), "{ctx} t={t}");
+        assert_eq!(fused.marks, apart.marks, "{ctx}: all finite");
+        for (t, (a, b)) in apart.ys.iter().zip(&ys).enumerate() {
+            assert!(
+                a == b || (t >= xs.len() && b.to_f64().is_nan()),
+                "{ctx} t={t}"
+            );
         }
     }
 
@@ -480,6 +538,7 @@ mod tests {
         let x: Vec<f64> = (0..700)
             .map(|i| ((i * 7919) % 113) as f64 * 0.013 - 0.7)
             .collect();
+        let x32: Vec<f32> = x.iter().map(|&v| v as f32).collect();
         // Scan and map of every relative size, aligned to 16 or not, empty.
         let spans = [
             (0, 0),
@@ -494,11 +553,22 @@ mod tests {
         for c in [0.0, 0.5, 0.99, 1.0] {
             for &scan in &spans {
                 for &map in &spans {
-                    fused_is_bit_identical::<false>(&x, c, scan, map);
-                    fused_is_bit_identical::<true>(&x, c, scan, map);
+                    fused_is_bit_identical::<false, f64>(&x, c, scan, map);
+                    fused_is_bit_identical::<true, f64>(&x, c, scan, map);
+                    fused_is_bit_identical::<true, f32>(&x32, c, scan, map);
                 }
             }
         }
+        // A non-finite output shows in the marks.
+        let mut bad = x.clone();
+        bad[650] = f64::INFINITY;
+        let mut ys = vec![0.0; 700];
+        let mut sink = SliceSink {
+            ys: &mut ys,
+            marks: F64x8::splat(0.0),
+        };
+        run_with_first::<false, f64>(&Run8::new(0.9), &bad, &mut sink, 0.0, &x[..400]);
+        assert!(sink.marks.0.iter().any(|m| m.is_nan()));
     }
 
     #[test]
