@@ -84,6 +84,13 @@ impl Par {
     ///    meant to be cheap);
     /// 3. `finish(scratch, i, p, x)` completes item `i` (in parallel).
     ///
+    /// A worker claims its next item `j` before it finishes item `i`, and
+    /// hands it to `finish(scratch, i, p, x, Some(j))`, which may do
+    /// `prepare(j)`'s work in the same pass over memory and return its
+    /// result (`None` leaves `j` to be prepared as usual). That result must
+    /// be exactly what `prepare(scratch, j)` returns; `Some(j)` is given
+    /// only while nobody has prepared `j` yet.
+    ///
     /// Workers claim items in order, so an item normally waits only briefly,
     /// for the item claimed just before it. The values obey the fixed
     /// recurrence `x[i + 1] = link(prepare(i), x[i])`, and `prepare` must be a
@@ -93,8 +100,8 @@ impl Par {
     /// busy machine) computes the missing `prepare` results and values
     /// itself instead of waiting a whole time slice. Results therefore do not
     /// depend on the number of workers or on timing. An item's data is
-    /// touched by `prepare` and `finish` on one worker, back to back, while it
-    /// is still in that core's cache. A panic in `prepare` is met again by
+    /// touched by `prepare` and `finish` on one worker, close together, while
+    /// it is still in that core's cache. A panic in `prepare` is met again by
     /// whichever worker steps in for that item, so it propagates instead of
     /// leaving others waiting.
     pub fn chain<T, S, P, I, Pr, L, Fi>(
@@ -111,7 +118,7 @@ impl Par {
         I: Fn() -> S + Sync + Send,
         Pr: Fn(&mut S, usize) -> P + Sync + Send,
         L: Fn(&P, T) -> T + Sync + Send,
-        Fi: Fn(&mut S, usize, P, T) + Sync + Send,
+        Fi: Fn(&mut S, usize, P, T, Option<usize>) -> Option<P> + Sync + Send,
     {
         if n == 0 {
             return;
@@ -125,13 +132,19 @@ impl Par {
         let _ = relay.values[0].set(first);
         let worker = || {
             let mut scratch = init();
-            while let Some(i) = relay.claim() {
+            let mut held = relay.claim();
+            while let Some(i) = held {
                 let p = relay.prepared(i, &mut scratch, &prepare);
                 let x = relay.value(i, &mut scratch, &prepare, &link);
                 if i + 1 < n {
                     let _ = relay.values[i + 1].set(link(&p, x));
                 }
-                finish(&mut scratch, i, p, x);
+                // Claimed now, so this worker's `finish(i)` may prepare it.
+                held = relay.claim();
+                let ahead = held.filter(|&j| relay.prepared[j].get().is_none());
+                if let (Some(j), Some(pj)) = (ahead, finish(&mut scratch, i, p, x, ahead)) {
+                    let _ = relay.prepared[j].set(pj);
+                }
             }
         };
         match self {
@@ -232,38 +245,50 @@ mod tests {
     use super::*;
     use std::sync::Mutex;
 
-    /// A prefix sum as a chain: item i passes `x + i`, and records what it got.
-    fn prefix(par: Par, n: usize) -> Vec<u64> {
+    /// A prefix sum as a chain: item i passes `x + i`, and records what it
+    /// got; with `fuse`, `finish` also prepares the item claimed ahead.
+    /// Returns the values and how many items `prepare` itself ran for.
+    fn prefix(par: Par, n: usize, fuse: bool) -> (Vec<u64>, usize) {
         let got = Mutex::new(vec![u64::MAX; n]);
+        let alone = AtomicUsize::new(0);
         par.chain(
             n,
             0u64,
             || (),
-            |_, i| i as u64,
+            |_, i| {
+                alone.fetch_add(1, Ordering::Relaxed);
+                i as u64
+            },
             |&p, x| x + p,
-            |_, i, p, x| {
+            |_, i, p, x, ahead| {
                 assert_eq!(p, i as u64);
                 got.lock().unwrap()[i] = x;
+                ahead.filter(|_| fuse).map(|j| j as u64)
             },
         );
-        got.into_inner().unwrap()
+        (got.into_inner().unwrap(), alone.into_inner())
     }
 
     #[test]
     fn chain_passes_every_value_in_order_for_any_worker_count() {
         for n in [0usize, 1, 2, 3, 17, 1000] {
             let want: Vec<u64> = (0..n as u64).map(|i| i * i.saturating_sub(1) / 2).collect();
-            assert_eq!(prefix(Par::Seq, n), want);
-            for threads in [1, 2, 3, 8] {
-                let pool = rayon::ThreadPoolBuilder::new()
-                    .num_threads(threads)
-                    .build()
-                    .unwrap();
-                assert_eq!(
-                    pool.install(|| prefix(Par::Rayon, n)),
-                    want,
-                    "threads={threads}"
-                );
+            for fuse in [false, true] {
+                let (got, alone) = prefix(Par::Seq, n, fuse);
+                assert_eq!(got, want);
+                // One worker prepares only item 0 itself when finish fuses.
+                assert_eq!(alone, if fuse { n.min(1) } else { n });
+                for threads in [1, 2, 3, 8] {
+                    let pool = rayon::ThreadPoolBuilder::new()
+                        .num_threads(threads)
+                        .build()
+                        .unwrap();
+                    assert_eq!(
+                        pool.install(|| prefix(Par::Rayon, n, fuse)).0,
+                        want,
+                        "threads={threads} fuse={fuse}"
+                    );
+                }
             }
         }
     }
@@ -274,84 +299,94 @@ mod tests {
             .num_threads(4)
             .build()
             .unwrap();
-        for bad in [0usize, 1, 5, 39] {
-            let finished = AtomicUsize::new(0);
-            let r = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| {
-                pool.install(|| {
-                    Par::Rayon.chain(
-                        40,
-                        0u32,
-                        || (),
-                        |_, i| {
-                            if i == bad {
-                                panic!("item {i}");
-                            }
-                        },
-                        |_, x| x + 1,
-                        |_, _, _, _| {
-                            finished.fetch_add(1, Ordering::Relaxed);
-                        },
-                    )
-                })
-            }));
-            assert!(r.is_err(), "the panic is re-raised");
-            assert!(
-                finished.into_inner() <= bad,
-                "no item after the broken one ran"
-            );
+        for fuse in [false, true] {
+            for bad in [0usize, 1, 5, 39] {
+                let finished = AtomicUsize::new(0);
+                let prep = |i: usize| {
+                    if i == bad {
+                        panic!("item {i}");
+                    }
+                };
+                let r = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| {
+                    pool.install(|| {
+                        Par::Rayon.chain(
+                            40,
+                            0u32,
+                            || (),
+                            |_, i| prep(i),
+                            |_, x| x + 1,
+                            |_, _, _, _, ahead| {
+                                let pj = ahead.filter(|_| fuse).map(prep);
+                                finished.fetch_add(1, Ordering::Relaxed);
+                                pj
+                            },
+                        )
+                    })
+                }));
+                assert!(r.is_err(), "the panic is re-raised (fuse={fuse})");
+                assert!(
+                    finished.into_inner() <= bad,
+                    "no item after the broken one ran (fuse={fuse})"
+                );
+            }
         }
     }
 
-    /// Item 3's worker stalls in `prepare` until item 6 has finished, which
-    /// only happens if another worker steps in for item 3: without that, the
-    /// chain would wait for it (here for up to 20 s, then fail).
+    /// Item 3's worker stalls in `prepare` (or, fused, in the `finish` that
+    /// prepares item 3 ahead) until item 6 has finished, which only happens
+    /// if another worker steps in for item 3: without that, the chain would
+    /// wait for it (here for up to 20 s, then fail).
     #[test]
     fn a_stalled_item_is_stepped_over_with_the_same_values() {
         let pool = rayon::ThreadPoolBuilder::new()
             .num_threads(2)
             .build()
             .unwrap();
-        let n = 10;
-        let done6 = std::sync::atomic::AtomicBool::new(false);
-        let calls3 = AtomicUsize::new(0);
-        let saw_done6 = std::sync::atomic::AtomicBool::new(false);
-        let got = Mutex::new(vec![u64::MAX; n]);
-        pool.install(|| {
-            Par::Rayon.chain(
-                n,
-                0u64,
-                || (),
-                |_, i| {
-                    if i == 3 && calls3.fetch_add(1, Ordering::SeqCst) == 0 {
-                        let t0 = std::time::Instant::now();
-                        while !done6.load(Ordering::SeqCst)
-                            && t0.elapsed() < std::time::Duration::from_secs(20)
-                        {
-                            std::thread::sleep(std::time::Duration::from_millis(1));
+        for fuse in [false, true] {
+            let n = 10;
+            let done6 = std::sync::atomic::AtomicBool::new(false);
+            let calls3 = AtomicUsize::new(0);
+            let saw_done6 = std::sync::atomic::AtomicBool::new(false);
+            let got = Mutex::new(vec![u64::MAX; n]);
+            let prep = |i: usize| {
+                if i == 3 && calls3.fetch_add(1, Ordering::SeqCst) == 0 {
+                    let t0 = std::time::Instant::now();
+                    while !done6.load(Ordering::SeqCst)
+                        && t0.elapsed() < std::time::Duration::from_secs(20)
+                    {
+                        std::thread::sleep(std::time::Duration::from_millis(1));
+                    }
+                    saw_done6.store(done6.load(Ordering::SeqCst), Ordering::SeqCst);
+                }
+                i as u64
+            };
+            pool.install(|| {
+                Par::Rayon.chain(
+                    n,
+                    0u64,
+                    || (),
+                    |_, i| prep(i),
+                    |&p, x| x + p,
+                    |_, i, _, x, ahead| {
+                        got.lock().unwrap()[i] = x;
+                        if i == 6 {
+                            done6.store(true, Ordering::SeqCst);
                         }
-                        saw_done6.store(done6.load(Ordering::SeqCst), Ordering::SeqCst);
-                    }
-                    i as u64
-                },
-                |&p, x| x + p,
-                |_, i, _, x| {
-                    got.lock().unwrap()[i] = x;
-                    if i == 6 {
-                        done6.store(true, Ordering::SeqCst);
-                    }
-                },
-            )
-        });
-        assert!(
-            saw_done6.into_inner(),
-            "another worker stepped in for item 3"
-        );
-        assert_eq!(
-            calls3.into_inner(),
-            2,
-            "item 3 prepared by its worker and the helper"
-        );
-        let want: Vec<u64> = (0..n as u64).map(|i| i * i.saturating_sub(1) / 2).collect();
-        assert_eq!(got.into_inner().unwrap(), want);
+                        ahead.filter(|_| fuse).map(prep)
+                    },
+                )
+            });
+            assert!(
+                saw_done6.into_inner(),
+                "another worker stepped in for item 3 (fuse={fuse})"
+            );
+            assert_eq!(
+                calls3.into_inner(),
+                2,
+                "item 3 prepared by its worker and the helper (fuse={fuse})"
+            );
+            let want: Vec<u64> = (0..n as u64).map(|i| i * i.saturating_sub(1) / 2).collect();
+            assert_eq!(got.into_inner().unwrap(), want, "fuse={fuse}");
+        }
     }
 }

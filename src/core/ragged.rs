@@ -20,11 +20,15 @@
 //! 3. the block scans itself with its carry and writes its outputs.
 //!
 //! Only step 2 is serial, and it touches one number per block. The blocks run
-//! as one chain ([`Par::chain`]): a worker does steps 1 and 3 of a block back
-//! to back, so a block is read from memory once and re-read from cache (one
+//! as one chain ([`Par::chain`]): a worker does steps 1 and 3 of a block close
+//! together, so a block is read from memory once and re-read from cache (one
 //! very long episode moves as few bytes per step as many short ones). Workers
 //! claim blocks in order and wait only for the carry of a block claimed just
-//! before. A single long episode is split like any other data, and since the
+//! before. A worker claims its next block before it scans the current one,
+//! and for discounted returns inside a long piece it does step 1 of the next
+//! block in the same loop as step 3 of this one ([`run_with_first`]): step 1
+//! only loads and step 3 mostly stores, so together they overlap where apart
+//! each would wait on memory. A single long episode is split like any other data, and since the
 //! blocks are fixed and the carries combined in one fixed order, the result
 //! is bit-identical for any thread count.
 //!
@@ -42,7 +46,7 @@
 use super::error::{check_unit, At, CoreError, CoreResult};
 use super::float::Real;
 use super::par::Par;
-use super::scan::{run, run_first, Carry, Run8, Sink, Terms, W};
+use super::scan::{run, run_first, run_with_first, Carry, Run8, Sink, SliceSink, Terms, W};
 use super::simd::{dispatch, finite_mark, F64x8, Kernel};
 use ndarray::{s, ArrayView1, ArrayViewMut1};
 use std::sync::atomic::{AtomicBool, Ordering};
@@ -157,6 +161,13 @@ impl<'a, F: Real> Pieces<'a, F> {
         let v = self.tail_values.as_ref().map_or(0.0, |a| a[e].to_f64());
         let a = self.tail_advantages.as_ref().map_or(0.0, |a| a[e].to_f64());
         (v, a)
+    }
+
+    /// Whether steps `[s0, s1)` lie inside one piece that continues past
+    /// `s1`: the block is then one run, its carry the one entering from the
+    /// right.
+    fn spans(&self, s0: usize, s1: usize) -> bool {
+        self.offsets[self.piece_of(s0) + 1] > s1
     }
 
     /// The piece containing step `s` (skipping empty pieces).
@@ -508,6 +519,57 @@ impl<T: Terms> Kernel for FirstJob<'_, T> {
     }
 }
 
+/// [`run_with_first`] as a [`Kernel`].
+struct FusedJob<'j, 'o, F> {
+    k: &'j Run8,
+    xs: &'j [F],
+    out: &'j mut SliceSink<'o, F>,
+    carry: f64,
+    xm: &'j [F],
+}
+
+impl<F: Real> Kernel for FusedJob<'_, '_, F> {
+    type Output = (f64, f64);
+    #[inline(always)]
+    fn run<const FMA: bool>(self) -> (f64, f64) {
+        run_with_first::<FMA, F>(self.k, self.xs, self.out, self.carry, self.xm)
+    }
+}
+
+/// The chain's fast path, for the blocks of a long piece: block `at` lies
+/// inside one piece that continues past it, and so does block `[m0, m1)`,
+/// whose map is then the head of the whole block with zero carry. For
+/// discounted returns with contiguous rewards and outputs, the block's scan
+/// and the other block's map run in one loop ([`run_with_first`]), so the
+/// map's loads overlap the scan's stores, and each gives exactly what
+/// [`BlockJob::go`] gives for it. Returns the map's head and whether every
+/// output stored is finite; `None`, with nothing done, in any other case.
+/// (GAE is left on the usual path: its terms read the values one step past
+/// each chunk, which the chunked loop does not do.)
+fn scan_with_map<F: Real>(
+    at: &Block<'_, '_, '_, F>,
+    outs: &mut BlockOuts<'_, '_, F>,
+    m0: usize,
+    m1: usize,
+) -> Option<(f64, bool)> {
+    let Kind::Returns { .. } = at.kind else {
+        return None;
+    };
+    let r = at.r.as_slice()?;
+    let mut sink = SliceSink {
+        ys: slice_of(outs.first)?,
+        marks: F64x8::splat(0.0),
+    };
+    let (_, head) = dispatch(FusedJob {
+        k: at.k,
+        xs: &r[at.s0..at.s1],
+        out: &mut sink,
+        carry: at.carry,
+        xm: &r[m0..m1],
+    });
+    Some((head, sink.marks.0.iter().all(|&p| p == 0.0)))
+}
+
 impl<F: Real> BlockJob<'_, '_, '_, F> {
     /// `y[s0]` of the block (with outputs: all stored; without: the head
     /// only), and whether every output stored is finite.
@@ -653,6 +715,16 @@ fn blocked<F: Real>(
     // Item i of the chain is block nb - 1 - i (carries flow right to left);
     // the value passed into it is the carry entering the block at its right
     // edge (0 after the last block, which ends a piece).
+    // Block b's affine map from its head segment's first output.
+    let map_of = |b: usize, head: f64| {
+        let (s0, s1) = bounds(b);
+        let factor = if pieces.spans(s0, s1) {
+            k.c().powi((s1 - s0) as i32)
+        } else {
+            0.0
+        };
+        Carry { head, factor }
+    };
     par.chain(
         nb,
         0.0f64,
@@ -661,43 +733,50 @@ fn blocked<F: Real>(
         |scr, i| {
             let b = nb - 1 - i;
             (b > 0).then(|| {
-                let (s0, s1) = bounds(b);
-                let e = pieces.piece_of(s0);
-                let ends_inside = pieces.offsets[e + 1] <= s1;
                 let job = BlockJob {
                     at: at(b, 0.0),
                     scratch: scr,
                     outs: None,
                 };
-                let (head, _) = job.go();
-                let factor = if ends_inside {
-                    0.0
-                } else {
-                    k.c().powi((s1 - s0) as i32)
-                };
-                Carry { head, factor }
+                map_of(b, job.go().0)
             })
         },
         // 2. The carry into the block on the left.
         |map, carry| map.map_or(0.0, |m| m.apply(carry)),
-        // 3. The block with its carry, outputs stored.
-        |scr, i, _, carry| {
+        // 3. The block with its carry, outputs stored; inside a long piece,
+        //    fused with the map of the block claimed ahead (usually the next
+        //    one on the left).
+        |scr, i, _, carry, ahead| {
             let b = nb - 1 - i;
             let taken = slots[b].lock().ok().and_then(|mut g| g.take());
-            let Some((mut a, mut c)) = taken else {
-                return;
+            let (mut a, mut c) = taken?;
+            let mut outs = BlockOuts {
+                first: &mut a,
+                second: c.as_mut(),
             };
+            let (s0, s1) = bounds(b);
+            if let Some(bm) = ahead.map(|j| nb - 1 - j).filter(|&bm| bm > 0) {
+                let (m0, m1) = bounds(bm);
+                if pieces.spans(s0, s1) && pieces.spans(m0, m1) {
+                    if let Some((head, fin)) = scan_with_map(&at(b, carry), &mut outs, m0, m1) {
+                        #[cfg(test)]
+                        tests::FUSED.with(|n| n.set(n.get() + 1));
+                        if !fin {
+                            finite.store(false, Ordering::Relaxed);
+                        }
+                        return Some(Some(map_of(bm, head)));
+                    }
+                }
+            }
             let job = BlockJob {
                 at: at(b, carry),
                 scratch: scr,
-                outs: Some(BlockOuts {
-                    first: &mut a,
-                    second: c.as_mut(),
-                }),
+                outs: Some(outs),
             };
             if !job.go().1 {
                 finite.store(false, Ordering::Relaxed);
             }
+            None
         },
     );
     finite.into_inner()
@@ -853,6 +932,100 @@ pub fn episode_sums<F: Real>(
 mod tests {
     use super::*;
     use ndarray::{Array1, Array2};
+
+    thread_local! {
+        /// Blocks this thread scanned fused with a map ([`scan_with_map`]).
+        pub(super) static FUSED: std::cell::Cell<usize> = const { std::cell::Cell::new(0) };
+    }
+
+    fn fused_here() -> usize {
+        FUSED.with(|n| n.get())
+    }
+
+    /// Returns and GAE (advantages, returns) with contiguous or strided
+    /// outputs (strided ones never take the fused path).
+    fn both_kinds<F: Real>(
+        r: &Array1<F>,
+        v: &Array1<F>,
+        p: &Pieces<'_, F>,
+        strided: bool,
+        par: Par,
+    ) -> CoreResult<[Array1<F>; 3]> {
+        let n = r.len();
+        let zero = F::from_f64(0.0);
+        let mut w = [0, 1, 2].map(|_| Array1::from_elem(2 * n, zero));
+        let [a, b, c] = &mut w;
+        let step = if strided { 2 } else { 1 };
+        discounted_returns(
+            r.view(),
+            p,
+            0.995,
+            true,
+            a.slice_mut(s![..n * step;step]),
+            par,
+        )?;
+        gae(
+            r.view(),
+            v.view(),
+            p,
+            0.99,
+            0.95,
+            true,
+            b.slice_mut(s![..n * step;step]),
+            c.slice_mut(s![..n * step;step]),
+            par,
+        )?;
+        Ok(w.map(|x| x.slice(s![..n * step;step]).to_owned()))
+    }
+
+    /// A long piece's blocks are scanned fused with the next block's map:
+    /// the results are bit-identical to the unfused path (strided outputs)
+    /// and to any thread count, and a bad input inside a fused block is
+    /// still found and named.
+    #[test]
+    fn fused_blocks_equal_the_unfused_path_bit_for_bit() {
+        let s = 6 * BLOCK + 77;
+        // A short piece, one long piece ending mid-block, a cut piece.
+        let lens = Array1::from(vec![40i64, (5 * BLOCK) as i64, (BLOCK + 37) as i64]);
+        let term = Array1::from(vec![true, true, false]);
+        let tails = Array1::from(vec![0.0f32, 0.0, 1.5]);
+        let p = Pieces::new(
+            lens.view(),
+            s,
+            Some(term.view()),
+            Some(tails.view()),
+            None,
+            true,
+        )
+        .unwrap();
+        let mut seed = 7u64;
+        let r = Array1::from_shape_fn(s, |_| lcg(&mut seed) as f32);
+        let v = Array1::from_shape_fn(s, |_| lcg(&mut seed) as f32);
+        let before = fused_here();
+        let fused = both_kinds(&r, &v, &p, false, Par::Seq).unwrap();
+        // Blocks 1..=4 lie inside the long piece; one worker scans blocks
+        // 4, 3, 2 fused with the maps of 3, 2, 1 (block 0 needs no map), for
+        // discounted returns (GAE keeps the usual path).
+        assert_eq!(fused_here() - before, 3, "the fused path ran");
+        let before = fused_here();
+        let apart = both_kinds(&r, &v, &p, true, Par::Seq).unwrap();
+        assert_eq!(fused_here(), before, "strided outputs are not fused");
+        assert_eq!(fused, apart);
+        for threads in [2, 3] {
+            let pool = rayon::ThreadPoolBuilder::new()
+                .num_threads(threads)
+                .build()
+                .unwrap();
+            let got = pool
+                .install(|| both_kinds(&r, &v, &p, false, Par::Rayon))
+                .unwrap();
+            assert_eq!(fused, got, "threads={threads}");
+        }
+        let mut bad = r.clone();
+        bad[3 * BLOCK + 5] = f32::NAN;
+        let e = both_kinds(&bad, &v, &p, false, Par::Seq).unwrap_err();
+        assert_eq!(e, CoreError::non_finite("rewards", At::Flat(3 * BLOCK + 5)));
+    }
 
     fn lcg(seed: &mut u64) -> f64 {
         *seed = seed
