@@ -316,28 +316,35 @@ def test_gil_is_released_during_a_kernel(rng, restore_threads):
     rollscan.set_num_threads(1)
     n = 200_000
     r = rng.normal(size=n)
-    t0 = time.perf_counter()
-    ragged.gae(r, r, [n], gamma=0.99, lam=0.95)
+    for _ in range(2):  # the first call is cold; time the second
+        t0 = time.perf_counter()
+        ragged.gae(r, r, [n], gamma=0.99, lam=0.95)
     per_step = (time.perf_counter() - t0) / n
-    n = int(min(max(0.8 / per_step, n), 20_000_000))  # aim at ~0.8 s
-    big = rng.normal(size=n)
     took = {}
 
-    def work():
+    def work(big):
         t = time.perf_counter()
-        ragged.gae(big, big, [n], gamma=0.99, lam=0.95)
+        ragged.gae(big, big, [big.size], gamma=0.99, lam=0.95)
         took["kernel"] = time.perf_counter() - t
 
-    worker = threading.Thread(target=work)
-    worker.start()
-    last = time.perf_counter()
-    longest = 0.0
-    while worker.is_alive():
-        now = time.perf_counter()
-        longest = max(longest, now - last)
-        last = now
-        time.sleep(0.001)
-    worker.join()
+    # Aim at ~0.8 s; on a machine whose speed shifts under us, resize and
+    # try again rather than give up.
+    for _ in range(4):
+        n = int(min(max(0.8 / per_step, n), 120_000_000))
+        big = np.full(n, 0.5)  # the values do not matter here, only the time
+        worker = threading.Thread(target=work, args=(big,))
+        worker.start()
+        last = time.perf_counter()
+        longest = 0.0
+        while worker.is_alive():
+            now = time.perf_counter()
+            longest = max(longest, now - last)
+            last = now
+            time.sleep(0.001)
+        worker.join()
+        if took["kernel"] >= 0.3 or n == 120_000_000:
+            break
+        per_step = took["kernel"] / n
     if took["kernel"] < 0.3:
         pytest.skip(f"kernel too quick ({took['kernel']:.2f} s) to tell")
     assert longest < 0.5 * took["kernel"], (longest, took["kernel"])
