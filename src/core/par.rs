@@ -82,7 +82,7 @@ impl Par {
     /// 2. once the value `x` into item `i` is known, `link(&p, x)`, the value
     ///    into item `i + 1`, is published at once (the only serial part,
     ///    meant to be cheap);
-    /// 3. `finish(scratch, i, p, x)` completes item `i` (in parallel).
+    /// 3. `finish(scratch, i, p, x, ahead)` completes item `i` (in parallel).
     ///
     /// A worker claims its next item `j` before it finishes item `i`, and
     /// hands it to `finish(scratch, i, p, x, Some(j))`, which may do

@@ -28,9 +28,9 @@
 //! and for discounted returns inside a long piece it does step 1 of the next
 //! block in the same loop as step 3 of this one ([`run_with_first`]): step 1
 //! only loads and step 3 mostly stores, so together they overlap where apart
-//! each would wait on memory. A single long episode is split like any other data, and since the
-//! blocks are fixed and the carries combined in one fixed order, the result
-//! is bit-identical for any thread count.
+//! each would wait on memory. A single long episode is split like any other
+//! data, and since the blocks are fixed and the carries combined in one fixed
+//! order, the result is bit-identical for any thread count.
 //!
 //! Inside a block every piece is a *run* with one constant coefficient
 //! (`gamma`, or `gamma * lam`), scanned 8 steps at a time by
