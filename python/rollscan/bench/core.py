@@ -142,6 +142,7 @@ def cases(quick: bool) -> list[Case]:
                 bytes_moved=s * 8,
                 fresh_out_bytes=s * 4,
                 target="within 2x of the floor (out=)" if s >= 10**6 else "",
+                steps=s,
             )
         )
     s = 10**6 if quick else 10**7
@@ -158,6 +159,8 @@ def cases(quick: bool) -> list[Case]:
             bytes_moved=s * 8,
             fresh_out_bytes=s * 4,
             target="no slower per step than many episodes",
+            steps=s,
+            versus=f"{s:.0e} steps, len 1..1000",
         )
     )
     return out

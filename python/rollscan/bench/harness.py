@@ -42,6 +42,10 @@ class Case:
         fresh_out_bytes: bytes of outputs ``run`` allocates.
         run_out: the same rollscan call writing into preallocated ``out=``.
         target: a one-line statement of the speed target, printed as is.
+        steps: steps the call covers (for per-step comparisons).
+        versus: name of another case of the same group to compare per step
+            with: both are timed again, alternately, and the report gives
+            this case's time per step as a multiple of that one's.
     """
 
     group: str
@@ -52,6 +56,8 @@ class Case:
     fresh_out_bytes: int = 0
     run_out: Callable[[], object] | None = None
     target: str = ""
+    steps: int = 0
+    versus: str = ""
 
 
 def time_call(fn: Callable[[], object], budget: float, max_reps: int = 200) -> float:
@@ -89,6 +95,27 @@ def time_small(fn: Callable[[], object], budget: float) -> float:
             fn()
         reps.append((time.perf_counter() - t0) / n)
     return statistics.median(reps)
+
+
+def time_alternating(
+    a: Callable[[], object], b: Callable[[], object], budget: float, max_reps: int = 200
+) -> tuple[float, float]:
+    """Median wall times of ``a`` and ``b``, called in turn so that a machine
+    whose speed drifts during the run slows both alike."""
+    gc.collect()
+    a()
+    b()
+    ta: list[float] = []
+    tb: list[float] = []
+    start = time.perf_counter()
+    while len(ta) < max_reps:
+        for fn, ts in ((a, ta), (b, tb)):
+            t0 = time.perf_counter()
+            fn()
+            ts.append(time.perf_counter() - t0)
+        if time.perf_counter() - start > budget and len(ta) >= 5:
+            break
+    return statistics.median(ta), statistics.median(tb)
 
 
 def copy_bandwidth(nbytes: int, budget: float) -> float:
@@ -163,6 +190,8 @@ def run_cases(cases: list[Case], quick: bool) -> dict:
                 touch = c.fresh_out_bytes / first_touch_rate(c.fresh_out_bytes, budget / 3)
                 row["floor_fresh_s"] = floor + touch
                 row["x_floor_fresh"] = t / (floor + touch)
+        if c.versus:
+            row["versus"] = _versus(c, cases, budget)
         rows.append(row)
         print(_fmt_row(row), file=sys.stderr, flush=True)
     return {
@@ -179,6 +208,25 @@ def run_cases(cases: list[Case], quick: bool) -> dict:
     }
 
 
+def _versus(c: Case, cases: list[Case], budget: float) -> dict:
+    """``c``'s time per step as a multiple of the case it names, both timed
+    alternately (with ``out=`` where both have it)."""
+    other = next((o for o in cases if o.group == c.group and o.name == c.versus), None)
+    if other is None or not c.steps or not other.steps:
+        raise ValueError(f"bench case {c.group}/{c.name}: no case {c.versus!r} with steps")
+    out = c.run_out is not None and other.run_out is not None
+    fa = c.run_out if out else c.run
+    fb = other.run_out if out else other.run
+    ta, tb = time_alternating(fa, fb, 2 * budget)
+    return {
+        "case": other.name,
+        "out": out,
+        "s": ta,
+        "other_s": tb,
+        "ratio": (ta / c.steps) / (tb / other.steps),
+    }
+
+
 def _fmt_row(r: dict) -> str:
     parts = [f"{r['group']:<28} {r['case']:<22} rollscan {_fmt_t(r['rollscan_s']):>10}"]
     if "rollscan_out_s" in r:
@@ -192,6 +240,12 @@ def _fmt_row(r: dict) -> str:
         if "x_floor_fresh" in r:
             s += f", vs floor+first-touch {r['x_floor_fresh']:.2f}x"
         parts.append(s)
+    if "versus" in r:
+        v = r["versus"]
+        parts.append(
+            f"| per step vs {v['case']}{' (out=)' if v['out'] else ''}, "
+            f"timed in turn: {v['ratio']:.2f}x"
+        )
     return " ".join(parts)
 
 
