@@ -21,15 +21,15 @@
 //! with a case's name as argument it runs that case alone (for a profiler).
 
 use rollscan::core::scan::{run, run_first, run_with_first, Run8, SliceSink, SliceTerms};
-use rollscan::core::simd::{dispatch, F64x8, Kernel};
+use rollscan::core::simd::{dispatch, Kernel};
 use std::time::Instant;
 
-/// Outputs into `y`.
+/// Inputs from `x`, outputs into `y`, both from step 0.
+fn terms(x: &[f32]) -> SliceTerms<'_, f32> {
+    SliceTerms { xs: x, base: 0 }
+}
 fn sink(y: &mut [f32]) -> SliceSink<'_, f32> {
-    SliceSink {
-        ys: y,
-        marks: F64x8::splat(0.0),
-    }
+    SliceSink::new(y, 0)
 }
 
 /// Steps per block, as in `core::ragged::BLOCK`.
@@ -59,38 +59,36 @@ impl Kernel for Sweep<'_> {
         let mut carry = 0.0;
         let mut maps = 0.0;
         match case {
-            Case::OnePass => {
-                carry = run::<FMA, _, _>(k, &SliceTerms(x), &mut sink(y), 0, nb * B, 0.0)
-            }
+            Case::OnePass => carry = run::<FMA, _, _>(k, &terms(x), &mut sink(y), 0, nb * B, 0.0),
             Case::Blocked | Case::ScanColdOut => {
                 for b in (0..nb).rev() {
                     let lo = b * B;
                     let out = &mut y[lo..lo + B];
                     let xb = match case {
                         Case::Blocked => {
-                            maps += run_first::<FMA, _>(k, &SliceTerms(x), lo, lo + B, 0.0);
+                            maps += run_first::<FMA, _>(k, &terms(x), lo, lo + B, 0.0);
                             &x[lo..lo + B]
                         }
                         _ => &x[..B],
                     };
-                    carry = run::<FMA, _, _>(k, &SliceTerms(xb), &mut sink(out), 0, B, carry);
+                    carry = run::<FMA, _, _>(k, &terms(xb), &mut sink(out), 0, B, carry);
                 }
             }
             Case::Fused => {
-                maps = run_first::<FMA, _>(k, &SliceTerms(x), (nb - 1) * B, nb * B, 0.0);
+                maps = run_first::<FMA, _>(k, &terms(x), (nb - 1) * B, nb * B, 0.0);
                 for b in (1..nb).rev() {
                     let lo = b * B;
-                    let (c, m) = run_with_first::<FMA, f32>(
+                    let (c, m, _) = run_with_first::<FMA, f32>(
                         k,
                         &x[lo..lo + B],
-                        &mut sink(&mut y[lo..lo + B]),
+                        &mut y[lo..lo + B],
                         carry,
                         &x[lo - B..lo],
                     );
                     carry = c;
                     maps += m;
                 }
-                carry = run::<FMA, _, _>(k, &SliceTerms(x), &mut sink(y), 0, B, carry);
+                carry = run::<FMA, _, _>(k, &terms(x), &mut sink(y), 0, B, carry);
             }
         }
         carry + maps

@@ -46,7 +46,9 @@
 use super::error::{check_unit, At, CoreError, CoreResult};
 use super::float::Real;
 use super::par::Par;
-use super::scan::{run, run_first, run_with_first, Carry, Run8, Sink, SliceSink, Terms, W};
+use super::scan::{
+    run, run_first, run_with_first, Carry, Run8, Sink, SliceSink, SliceTerms, Terms, W,
+};
 use super::simd::{dispatch, finite_mark, F64x8, Kernel};
 use ndarray::{s, ArrayView1, ArrayViewMut1};
 use std::sync::atomic::{AtomicBool, Ordering};
@@ -202,28 +204,6 @@ fn stage<'s, F: Real>(
     }
 }
 
-/// `x = r` (discounted returns).
-struct RetTerms<'s, F> {
-    r: &'s [F],
-    base: usize,
-}
-
-impl<F: Real> Terms for RetTerms<'_, F> {
-    #[inline(always)]
-    fn x8(&self, t: usize) -> F64x8 {
-        let r = &self.r[t - self.base..t - self.base + W];
-        let mut x = [0.0f64; W];
-        for (x, r) in x.iter_mut().zip(r) {
-            *x = r.to_f64();
-        }
-        F64x8(x)
-    }
-    #[inline(always)]
-    fn x1(&self, t: usize) -> f64 {
-        self.r[t - self.base].to_f64()
-    }
-}
-
 /// `x = delta = r + gamma * v[t+1] - v[t]` (GAE inside a piece).
 struct GaeTerms<'s, F> {
     r: &'s [F],
@@ -251,38 +231,8 @@ impl<F: Real> Terms for GaeTerms<'_, F> {
     }
 }
 
-/// Stores `y` rounded to `F` (returns, or advantages alone).
-///
-/// `poison` sums the finite marks (`y - y`) of every output, handed over by
-/// each run: 0 while all are finite, NaN after any is not. Every input step enters its own output with weight 1, so
-/// a non-finite input always shows here, at two vector operations per 8 steps
-/// instead of a separate pass over the inputs.
-struct OneOut<'o, F> {
-    out: &'o mut [F],
-    base: usize,
-    poison: F64x8,
-}
-
-impl<F: Real> Sink for OneOut<'_, F> {
-    #[inline(always)]
-    fn put8(&mut self, t: usize, y: &F64x8) {
-        let o = &mut self.out[t - self.base..t - self.base + W];
-        for (o, &y) in o.iter_mut().zip(&y.0) {
-            *o = F::from_f64(y);
-        }
-    }
-    #[inline(always)]
-    fn put1(&mut self, t: usize, y: f64) {
-        self.out[t - self.base] = F::from_f64(y);
-    }
-    #[inline(always)]
-    fn marks(&mut self, m: F64x8) {
-        self.poison = self.poison + m;
-    }
-}
-
 /// Stores the advantage `y` and the return `y + v`.
-/// `poison` as for [`OneOut`].
+/// `poison` as `marks` of [`SliceSink`].
 struct GaeOut<'o, 's, F> {
     adv: &'o mut [F],
     ret: &'o mut [F],
@@ -520,19 +470,19 @@ impl<T: Terms> Kernel for FirstJob<'_, T> {
 }
 
 /// [`run_with_first`] as a [`Kernel`].
-struct FusedJob<'j, 'o, F> {
+struct FusedJob<'j, F> {
     k: &'j Run8,
     xs: &'j [F],
-    out: &'j mut SliceSink<'o, F>,
+    ys: &'j mut [F],
     carry: f64,
     xm: &'j [F],
 }
 
-impl<F: Real> Kernel for FusedJob<'_, '_, F> {
-    type Output = (f64, f64);
+impl<F: Real> Kernel for FusedJob<'_, F> {
+    type Output = (f64, f64, F64x8);
     #[inline(always)]
-    fn run<const FMA: bool>(self) -> (f64, f64) {
-        run_with_first::<FMA, F>(self.k, self.xs, self.out, self.carry, self.xm)
+    fn run<const FMA: bool>(self) -> (f64, f64, F64x8) {
+        run_with_first::<FMA, F>(self.k, self.xs, self.ys, self.carry, self.xm)
     }
 }
 
@@ -556,18 +506,14 @@ fn scan_with_map<F: Real>(
         return None;
     };
     let r = at.r.as_slice()?;
-    let mut sink = SliceSink {
-        ys: slice_of(outs.first)?,
-        marks: F64x8::splat(0.0),
-    };
-    let (_, head) = dispatch(FusedJob {
+    let (_, head, marks) = dispatch(FusedJob {
         k: at.k,
         xs: &r[at.s0..at.s1],
-        out: &mut sink,
+        ys: slice_of(outs.first)?,
         carry: at.carry,
         xm: &r[m0..m1],
     });
-    Some((head, sink.marks.0.iter().all(|&p| p == 0.0)))
+    Some((head, marks.0.iter().all(|&p| p == 0.0)))
 }
 
 impl<F: Real> BlockJob<'_, '_, '_, F> {
@@ -590,9 +536,9 @@ impl<F: Real> BlockJob<'_, '_, '_, F> {
         let m = s1 - s0;
         match (at.kind, at.v) {
             (Kind::Returns { .. }, _) | (_, None) => {
-                let terms = RetTerms { r: rs, base: s0 };
+                let terms = SliceTerms { xs: rs, base: s0 };
                 let Some(BlockOuts { first, .. }) = outs else {
-                    let y = at.pieces_of::<_, OneOut<F>>(&terms, None, rs, None, at.carry);
+                    let y = at.pieces_of::<_, SliceSink<F>>(&terms, None, rs, None, at.carry);
                     return (y, true);
                 };
                 let direct = slice_of(first).is_some();
@@ -605,13 +551,9 @@ impl<F: Real> BlockJob<'_, '_, '_, F> {
                         Some(d) => d,
                         None => &mut o1[..],
                     };
-                    let mut sink = OneOut {
-                        out,
-                        base: s0,
-                        poison: F64x8::splat(0.0),
-                    };
+                    let mut sink = SliceSink::new(out, s0);
                     let y = at.pieces_of::<_, _>(&terms, Some(&mut sink), rs, None, at.carry);
-                    (y, sink.poison)
+                    (y, sink.marks)
                 };
                 if !direct {
                     first.iter_mut().zip(o1.iter()).for_each(|(d, &x)| *d = x);
@@ -631,7 +573,7 @@ impl<F: Real> BlockJob<'_, '_, '_, F> {
                     second: Some(second),
                 }) = outs
                 else {
-                    let y = at.pieces_of::<_, OneOut<F>>(&terms, None, rs, Some(vs), at.carry);
+                    let y = at.pieces_of::<_, SliceSink<F>>(&terms, None, rs, Some(vs), at.carry);
                     return (y, true);
                 };
                 let direct = slice_of(first).is_some() && slice_of(second).is_some();

@@ -286,37 +286,62 @@ impl<'k> Heads<'k> {
     }
 }
 
-/// A slice of storage floats as a run's inputs: `x[t] = xs[t]`.
-pub struct SliceTerms<'a, F>(pub &'a [F]);
+/// A slice of storage floats as a run's inputs: `x[t] = xs[t - base]`.
+pub struct SliceTerms<'a, F> {
+    /// The inputs, from step `base` on.
+    pub xs: &'a [F],
+    /// The step of `xs[0]`.
+    pub base: usize,
+}
 
 impl<F: Real> Terms for SliceTerms<'_, F> {
     #[inline(always)]
     fn x8(&self, t: usize) -> F64x8 {
-        widen8(&self.0[t..t + W])
+        widen8(&self.xs[t - self.base..t - self.base + W])
     }
     #[inline(always)]
     fn x1(&self, t: usize) -> f64 {
-        self.0[t].to_f64()
+        self.xs[t - self.base].to_f64()
     }
 }
 
-/// A slice of storage floats as a run's outputs (`ys[t] = y[t]` rounded
-/// once), with the finite marks handed over summed in `marks`.
+/// A slice of storage floats as a run's outputs: `ys[t - base] = y[t]`,
+/// rounded once.
+///
+/// `marks` sums the finite marks (`y - y`) of every output, handed over by
+/// each run: 0 while all are finite, NaN after any is not. Every input step
+/// of a return or advantage enters its own output with weight 1, so a
+/// non-finite input always shows here, at two vector operations per 8 steps
+/// instead of a separate pass over the inputs.
 pub struct SliceSink<'a, F> {
-    /// Where `y[t]` goes.
+    /// Where the outputs go, from step `base` on.
     pub ys: &'a mut [F],
-    /// The outputs' finite marks, summed (0 while every one is finite).
+    /// The step of `ys[0]`.
+    pub base: usize,
+    /// The outputs' finite marks, summed.
     pub marks: F64x8,
+}
+
+impl<'a, F: Real> SliceSink<'a, F> {
+    /// Outputs from step `base` on, no marks yet.
+    pub fn new(ys: &'a mut [F], base: usize) -> Self {
+        SliceSink {
+            ys,
+            base,
+            marks: F64x8::splat(0.0),
+        }
+    }
 }
 
 impl<F: Real> Sink for SliceSink<'_, F> {
     #[inline(always)]
     fn put8(&mut self, t: usize, y: &F64x8) {
-        narrow8(&mut self.ys[t..t + W], y);
+        let i = t - self.base;
+        narrow8(&mut self.ys[i..i + W], y);
     }
     #[inline(always)]
     fn put1(&mut self, t: usize, y: f64) {
-        self.ys[t] = F::from_f64(y);
+        self.ys[t - self.base] = F::from_f64(y);
     }
     #[inline(always)]
     fn marks(&mut self, m: F64x8) {
@@ -340,10 +365,11 @@ fn narrow8<F: Real>(d: &mut [F], y: &F64x8) {
     }
 }
 
-/// [`run`] over all of `xs` (into `out.ys`, `carry` entering at the end) and
+/// [`run`] over all of `xs` (into `ys`, `carry` entering at the end) and
 /// [`run_first`] over all of `xm` (zero carry) in one loop; returns
-/// `(y[0], first)`, both bit-identical to the two calls made apart. `xs` and
-/// `out.ys` have one length (extra outputs are left alone).
+/// `(y[0], first, marks)` (`marks` as for [`SliceSink`]), bit-identical to
+/// the two calls made apart. `xs` and `ys` have one length (extra outputs
+/// are left alone).
 ///
 /// Why one loop: a scan mostly stores and a map only loads, so, run apart,
 /// each waits on memory in its own direction; interleaved 16 steps at a
@@ -358,23 +384,26 @@ fn narrow8<F: Real>(d: &mut [F], y: &F64x8) {
 pub fn run_with_first<const FMA: bool, F: Real>(
     k: &Run8,
     xs: &[F],
-    out: &mut SliceSink<'_, F>,
+    ys: &mut [F],
     carry: f64,
     xm: &[F],
-) -> (f64, f64) {
-    let n = xs.len().min(out.ys.len());
+) -> (f64, f64, F64x8) {
+    let n = xs.len().min(ys.len());
     let m = xm.len();
+    let (map, scan) = (SliceTerms { xs: xm, base: 0 }, SliceTerms { xs, base: 0 });
     if k.c == 0.0 {
-        let y = run::<FMA, _, _>(k, &SliceTerms(xs), out, 0, n, carry);
-        return (y, run_first::<FMA, _>(k, &SliceTerms(xm), 0, m, 0.0));
+        let mut out = SliceSink::new(ys, 0);
+        let y = run::<FMA, _, _>(k, &scan, &mut out, 0, n, carry);
+        return (y, run_first::<FMA, _>(k, &map, 0, m, 0.0), out.marks);
     }
     let shared = (n / (2 * W)).min(m / (2 * W)) * 2 * W;
     let mut heads = Heads::new(k, 0, m);
     let mut y = carry;
     let mut marks = F64x8::splat(0.0);
+    let (ys, ys_shared) = ys[..n].split_at_mut(n - shared);
     let chunks = xs[n - shared..n]
         .rchunks_exact(2 * W)
-        .zip(out.ys[n - shared..n].rchunks_exact_mut(2 * W))
+        .zip(ys_shared.rchunks_exact_mut(2 * W))
         .zip(xm[m - shared..].rchunks_exact(2 * W));
     for ((sx, sy), sm) in chunks {
         let (xu, xl) = (widen8(&sx[W..]), widen8(&sx[..W]));
@@ -388,16 +417,14 @@ pub fn run_with_first<const FMA: bool, F: Real>(
         y = lower.0[0];
     }
     heads.t -= shared;
-    out.marks(marks);
-    let map = SliceTerms(xm);
     while heads.more() {
         heads.group::<FMA, _>(&map);
     }
     let first = heads.finish::<FMA, _>(&map, 0.0);
-    (
-        run::<FMA, _, _>(k, &SliceTerms(xs), out, 0, n - shared, y),
-        first,
-    )
+    let mut rest = SliceSink::new(ys, 0);
+    rest.marks = marks;
+    let y0 = run::<FMA, _, _>(k, &scan, &mut rest, 0, n - shared, y);
+    (y0, first, rest.marks)
 }
 
 /// The affine map a segment applies to the carry entering it from the right:
@@ -509,22 +536,17 @@ mod tests {
         let k = Run8::new(c);
         let nan = F::from_f64(f64::NAN);
         let (xs, xm) = (&x[scan.0..scan.1], &x[map.0..map.1]);
-        let mut apart = SliceSink {
-            ys: &mut vec![nan; xs.len() + 3],
-            marks: F64x8::splat(0.0),
-        };
-        let y = run::<FMA, _, _>(&k, &SliceTerms(xs), &mut apart, 0, xs.len(), 0.75);
-        let m = run_first::<FMA, _>(&k, &SliceTerms(xm), 0, xm.len(), 0.0);
+        let mut ya = vec![nan; xs.len() + 3];
+        let mut apart = SliceSink::new(&mut ya, 0);
+        let terms = |xs| SliceTerms { xs, base: 0 };
+        let y = run::<FMA, _, _>(&k, &terms(xs), &mut apart, 0, xs.len(), 0.75);
+        let m = run_first::<FMA, _>(&k, &terms(xm), 0, xm.len(), 0.0);
         let mut ys = vec![nan; xs.len() + 3];
-        let mut fused = SliceSink {
-            ys: &mut ys[..xs.len()],
-            marks: F64x8::splat(0.0),
-        };
-        let (fy, fm) = run_with_first::<FMA, F>(&k, xs, &mut fused, 0.75, xm);
+        let (fy, fm, marks) = run_with_first::<FMA, F>(&k, xs, &mut ys[..xs.len()], 0.75, xm);
         let ctx = format!("c={c} scan={scan:?} map={map:?} fma={FMA} {}", F::NAME);
         assert_eq!(fy.to_bits(), y.to_bits(), "{ctx}");
         assert_eq!(fm.to_bits(), m.to_bits(), "{ctx}");
-        assert_eq!(fused.marks, apart.marks, "{ctx}: all finite");
+        assert_eq!(marks, apart.marks, "{ctx}: all finite");
         for (t, (a, b)) in apart.ys.iter().zip(&ys).enumerate() {
             assert!(
                 a == b || (t >= xs.len() && b.to_f64().is_nan()),
@@ -563,12 +585,9 @@ mod tests {
         let mut bad = x.clone();
         bad[650] = f64::INFINITY;
         let mut ys = vec![0.0; 700];
-        let mut sink = SliceSink {
-            ys: &mut ys,
-            marks: F64x8::splat(0.0),
-        };
-        run_with_first::<false, f64>(&Run8::new(0.9), &bad, &mut sink, 0.0, &x[..400]);
-        assert!(sink.marks.0.iter().any(|m| m.is_nan()));
+        let (_, _, marks) =
+            run_with_first::<false, f64>(&Run8::new(0.9), &bad, &mut ys, 0.0, &x[..400]);
+        assert!(marks.0.iter().any(|m| m.is_nan()));
     }
 
     #[test]
