@@ -232,13 +232,13 @@ impl<F: Real> Terms for GaeTerms<'_, F> {
 }
 
 /// Stores the advantage `y` and the return `y + v`.
-/// `poison` as `marks` of [`SliceSink`].
+/// `marks` as for [`SliceSink`].
 struct GaeOut<'o, 's, F> {
     adv: &'o mut [F],
     ret: &'o mut [F],
     v: &'s [F],
     base: usize,
-    poison: F64x8,
+    marks: F64x8,
 }
 
 impl<F: Real> Sink for GaeOut<'_, '_, F> {
@@ -263,7 +263,7 @@ impl<F: Real> Sink for GaeOut<'_, '_, F> {
     }
     #[inline(always)]
     fn marks(&mut self, m: F64x8) {
-        self.poison = self.poison + m;
+        self.marks = self.marks + m;
     }
 }
 
@@ -513,7 +513,7 @@ fn scan_with_map<F: Real>(
         carry: at.carry,
         xm: &r[m0..m1],
     });
-    Some((head, marks.0.iter().all(|&p| p == 0.0)))
+    Some((head, marks.all_zero()))
 }
 
 impl<F: Real> BlockJob<'_, '_, '_, F> {
@@ -546,7 +546,7 @@ impl<F: Real> BlockJob<'_, '_, '_, F> {
                     o1.clear();
                     o1.resize(m, F::from_f64(0.0));
                 }
-                let (y, poison) = {
+                let (y, marks) = {
                     let out = match slice_of(first) {
                         Some(d) => d,
                         None => &mut o1[..],
@@ -558,7 +558,7 @@ impl<F: Real> BlockJob<'_, '_, '_, F> {
                 if !direct {
                     first.iter_mut().zip(o1.iter()).for_each(|(d, &x)| *d = x);
                 }
-                (y, poison.0.iter().all(|&p| p == 0.0))
+                (y, marks.all_zero())
             }
             (Kind::Gae { gamma, .. }, Some(vv)) => {
                 let vs = stage(vv, s0, (end + 1).min(n), v);
@@ -583,7 +583,7 @@ impl<F: Real> BlockJob<'_, '_, '_, F> {
                     o2.clear();
                     o2.resize(m, F::from_f64(0.0));
                 }
-                let (y, poison) = {
+                let (y, marks) = {
                     let (adv, ret) = match (direct, slice_of(first), slice_of(second)) {
                         (true, Some(a), Some(b)) => (a, b),
                         _ => (&mut o1[..], &mut o2[..]),
@@ -593,16 +593,16 @@ impl<F: Real> BlockJob<'_, '_, '_, F> {
                         ret,
                         v: vs,
                         base: s0,
-                        poison: F64x8::splat(0.0),
+                        marks: F64x8::splat(0.0),
                     };
                     let y = at.pieces_of::<_, _>(&terms, Some(&mut sink), rs, Some(vs), at.carry);
-                    (y, sink.poison)
+                    (y, sink.marks)
                 };
                 if !direct {
                     first.iter_mut().zip(o1.iter()).for_each(|(d, &x)| *d = x);
                     second.iter_mut().zip(o2.iter()).for_each(|(d, &x)| *d = x);
                 }
-                (y, poison.0.iter().all(|&p| p == 0.0))
+                (y, marks.all_zero())
             }
         }
     }

@@ -155,6 +155,13 @@ impl F64x8 {
         F64x8(o)
     }
 
+    /// Whether every lane is 0: for summed [`F64x8::finite_marks`], whether
+    /// every value marked was finite.
+    #[inline(always)]
+    pub fn all_zero(self) -> bool {
+        self.0.iter().all(|&m| m == 0.0)
+    }
+
     /// Lanes moved down by `D`: lane `j` gets lane `j + D`, the top `D` lanes 0.
     #[inline(always)]
     pub fn shift<const D: usize>(self) -> Self {
@@ -216,6 +223,7 @@ mod tests {
         assert_eq!(x.shift::<1>().0, [2.0, 3.0, 4.0, 5.0, 6.0, 7.0, 8.0, 0.0]);
         assert_eq!(x.shift::<4>().0, [5.0, 6.0, 7.0, 8.0, 0.0, 0.0, 0.0, 0.0]);
         let y = F64x8([0.0, f64::INFINITY, -1.0, f64::NAN, 0.0, 0.0, 0.0, 1e308]);
+        assert!(!y.finite_marks().all_zero() && x.finite_marks().all_zero());
         let m = y.finite_marks().0;
         assert!(m[1].is_nan() && m[3].is_nan());
         assert!(m
